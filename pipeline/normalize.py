@@ -1,0 +1,491 @@
+"""Stage 2, normalize: from cell text to pKa of the acid form at T [K] and I [mol/kg].
+
+Input is the ingest stage's ``raw_cells`` (text only). Output is three tables:
+
+- ``measurements``: one row per accepted source row, in the published layout;
+- ``rejects``: one row per (source row, field) that could not be read, with a plain reason;
+- ``lineage``: the ordered steps from each source cell to the stored number.
+
+Every source row ends in exactly one of ``measurements`` or ``rejects`` (a rejected row may have
+several ``rejects`` rows, one per bad field). All work is column-wise; the physical chemistry is
+evaluated on the few unique conditions and broadcast back.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from collections.abc import Callable
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from pipeline import identity, parse, physchem
+from pipeline.schemas.tables import LINEAGE, MEASUREMENTS, REJECTS
+
+CONSTANT_TYPES = ("thermodynamic", "concentration", "mixed")
+#: Release of the water-ionization formulation behind :func:`physchem.pkw` (iapws package).
+PKW_RELEASE = "IAPWS R11-24"
+
+
+@dataclass(frozen=True)
+class NormalizeResult:
+    measurements: pd.DataFrame
+    rejects: pd.DataFrame
+    lineage: pd.DataFrame
+    compounds: pd.DataFrame  # one row per compound_id, from identity resolution
+    identity_findings: pd.DataFrame
+
+
+def make_value_ids(source_id: pd.Series, table_file: pd.Series, source_row: pd.Series) -> pd.Series:
+    """Stable value ids: ``kv-`` + 16 hex digits of sha256(source id, table file, row).
+
+    The id depends only on where the value sits, so an unchanged source gives the same ids on
+    every rebuild and an edited cell keeps its id (a diff then shows it as changed).
+
+    Examples
+    --------
+    >>> make_value_ids(pd.Series(["demo"]), pd.Series(["t.csv"]), pd.Series([2])).iloc[0]
+    'kv-51a9bd8e07f0d2c1'
+    """
+    keys = source_id.astype(str) + "\x1f" + table_file.astype(str) + "\x1f" + source_row.astype(str)
+    return pd.Series(
+        ["kv-" + hashlib.sha256(k.encode("utf-8")).hexdigest()[:16] for k in keys],
+        index=source_id.index,
+        dtype=object,
+    )
+
+
+def _blank(text: pd.Series) -> pd.Series:
+    return text.isna() | (text.astype(str).str.strip() == "")
+
+
+def _with_defaults(cells: pd.DataFrame, tables: pd.DataFrame, field: str) -> pd.DataFrame:
+    """The cell text of ``field``, or the table's descriptor default where the cell is blank.
+
+    Returns columns ``text`` and ``from_default`` (bool).
+    """
+    defaults = tables.set_index(["source_id", "table_file"])["defaults"].map(
+        lambda d: d.get(field)
+    )
+    key = pd.MultiIndex.from_frame(cells[["source_id", "table_file"]])
+    default = pd.Series(defaults.reindex(key).to_numpy(), index=cells.index, dtype=object)
+    text = cells[field]
+    use_default = _blank(text) & default.notna()
+    return pd.DataFrame(
+        {"text": text.where(~use_default, default), "from_default": use_default},
+        index=cells.index,
+    )
+
+
+def _on_unique(
+    func: Callable[..., np.ndarray], *columns: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """Evaluate ``func`` on the unique rows of ``columns``; return (values, error text).
+
+    A condition outside the valid range of the physical chemistry gives NaN and the error's
+    message for the rows that carry it, and does not stop the others.
+    """
+    stacked = np.column_stack(columns) if columns[0].size else np.empty((0, len(columns)))
+    unique, inverse = np.unique(stacked, axis=0, return_inverse=True)
+    inverse = inverse.reshape(-1)
+    errors = np.full(len(unique), None, dtype=object)
+    try:
+        values = np.asarray(func(*unique.T), dtype=float)
+    except physchem.PhysChemRangeError:
+        values = np.full(len(unique), np.nan)
+        for i, row in enumerate(unique):  # few unique conditions: find the bad ones
+            try:
+                values[i] = np.asarray(func(*row[:, None]), dtype=float)[0]
+            except physchem.PhysChemRangeError as exc:
+                errors[i] = str(exc)
+    return values[inverse], errors[inverse]
+
+
+def _rejects_for(
+    frame: pd.DataFrame, mask: pd.Series, field: str, raw: pd.Series, reason: pd.Series | str
+) -> pd.DataFrame:
+    if isinstance(reason, str):
+        reason = pd.Series(reason, index=frame.index)
+    picked = mask.fillna(False).astype(bool)
+    return pd.DataFrame(
+        {
+            "source_id": frame.loc[picked, "source_id"],
+            "source_row": frame.loc[picked, "source_row"],
+            "field": field,
+            "raw_text": raw[picked],
+            "reason": reason[picked],
+        }
+    )
+
+
+def normalize(
+    raw_cells: pd.DataFrame,
+    tables: pd.DataFrame,
+    synonyms: pd.DataFrame | None = None,
+    identity_cache: identity.IdentityCache | None = None,
+) -> NormalizeResult:
+    """Normalize raw cells to measurements, rejects and lineage (see module docstring)."""
+    cells = raw_cells.reset_index(drop=True)
+    rejects: list[pd.DataFrame] = []
+
+    def reject(mask: pd.Series, field: str, raw: pd.Series, reason: pd.Series | str) -> None:
+        rejects.append(_rejects_for(cells, mask, field, raw, reason))
+
+    # 0. rows the reader could not split cleanly
+    reject(cells["row_error"].notna(), "row", pd.Series(None, index=cells.index), cells["row_error"])
+
+    # 1. quantity (pKa, Ka, pKb, Kb, logK), possibly carrying a step ("pKa2")
+    quantity_text = _with_defaults(cells, tables, "quantity")
+    quantity_blank = _blank(quantity_text["text"])
+    quantity = parse.parse_quantity(quantity_text["text"].where(~quantity_blank, ""))
+    reject(
+        quantity_blank,
+        "quantity",
+        quantity_text["text"],
+        "quantity is missing: add a quantity column or a [defaults] quantity (pKa, Ka, pKb, Kb, logK)",
+    )
+    reject(~quantity_blank & quantity["error"].notna(), "quantity", quantity_text["text"], quantity["error"])
+
+    # 2. the value itself, with the source's decimal mark
+    decimal = tables.set_index(["source_id", "table_file"])["decimal"]
+    row_decimal = decimal.reindex(pd.MultiIndex.from_frame(cells[["source_id", "table_file"]])).to_numpy()
+    value_text = cells["value"]
+    value_blank = _blank(value_text)
+    parsed = pd.DataFrame(index=cells.index, columns=["value", "uncertainty", "qualifier", "low", "high", "missing", "error"])
+    for mark in np.unique(row_decimal.astype(str)):  # one or two decimal marks at most
+        rows = row_decimal == mark
+        parsed.loc[rows] = parse.parse_values(value_text[rows].fillna(""), decimal=mark).to_numpy()
+    parsed["value"] = parsed["value"].astype(float)
+    parsed["uncertainty"] = parsed["uncertainty"].astype(float)
+    reject(value_blank | parsed["missing"].astype(bool), "value", value_text, "value is empty")
+    reject(
+        ~value_blank & ~parsed["missing"].astype(bool) & parsed["error"].notna(),
+        "value",
+        value_text,
+        parsed["error"],
+    )
+
+    # 3. a separate uncertainty column overrides none: it fills where the value had no ±
+    unc_text = cells["uncertainty"]
+    unc_given = ~_blank(unc_text)
+    unc = parse.parse_values(unc_text.where(unc_given, ""))
+    reject(unc_given & unc["error"].notna(), "uncertainty", unc_text, unc["error"])
+    uncertainty = parsed["uncertainty"].where(parsed["uncertainty"].notna(), unc["value"].astype(float))
+    reject(
+        uncertainty < 0, "uncertainty", unc_text.fillna(value_text), "uncertainty must not be negative"
+    )
+
+    # 4. temperature
+    temp_text = _with_defaults(cells, tables, "temperature")
+    temp_blank = _blank(temp_text["text"])
+    temp = parse.parse_temperature(temp_text["text"].where(~temp_blank, ""))
+    reject(temp_blank, "temperature", temp_text["text"], "temperature is missing and [defaults] gives none")
+    reject(~temp_blank & temp["error"].notna(), "temperature", temp_text["text"], temp["error"])
+    temperature_k = temp["kelvin"].astype(float)
+
+    # 5. ionic strength, with its scale and background electrolyte
+    ionic_text = _with_defaults(cells, tables, "ionic_strength")
+    ionic_blank = _blank(ionic_text["text"])
+    ionic = parse.parse_ionic_strength(ionic_text["text"].where(~ionic_blank, ""))
+    reject(
+        ionic_blank, "ionic_strength", ionic_text["text"], "ionic strength is missing and [defaults] gives none"
+    )
+    reject(~ionic_blank & ionic["error"].notna(), "ionic_strength", ionic_text["text"], ionic["error"])
+    ionic_value = ionic["value"].astype(float)
+
+    # 6. solvent / medium text to the controlled vocabulary
+    medium_text = _with_defaults(cells, tables, "medium")
+    medium_blank = _blank(medium_text["text"])
+    medium = parse.parse_medium(medium_text["text"].where(~medium_blank, "water"))
+    reject(~medium_blank & medium["error"].notna(), "medium", medium_text["text"], medium["error"])
+
+    # 7. constant type: required at I > 0, thermodynamic by definition at I = 0
+    ctype_text = _with_defaults(cells, tables, "constant_type")
+    ctype = ctype_text["text"].astype(str).str.strip().str.lower().where(~_blank(ctype_text["text"]))
+    ctype = ctype.where(ctype.notna() | (ionic_value != 0), "thermodynamic")
+    reject(
+        ctype.isna() & ionic_value.gt(0),
+        "constant_type",
+        ctype_text["text"],
+        "constant type is missing for a value at I > 0: give thermodynamic, concentration or mixed",
+    )
+    bad_ctype = ctype.notna() & ~ctype.isin(CONSTANT_TYPES)
+    reject(
+        bad_ctype,
+        "constant_type",
+        ctype_text["text"],
+        "constant type '" + ctype_text["text"].astype(str) + "' is not one of " + ", ".join(CONSTANT_TYPES),
+    )
+
+    # 8. step and charge (whole numbers)
+    step_text = _with_defaults(cells, tables, "step")
+    step_given = ~_blank(step_text["text"])
+    step_num = pd.to_numeric(step_text["text"].astype(str).str.strip().str.lstrip("pPkKaA "), errors="coerce")
+    bad_step = step_given & ~(step_num.notna() & (step_num == step_num.round()) & (step_num >= 1))
+    reject(bad_step, "step", step_text["text"], "step '" + step_text["text"].astype(str) + "' is not a whole number from 1")
+    step = pd.array(step_num.where(step_given & ~bad_step), dtype="Float64").round().astype("Int64")
+    step = pd.Series(step, index=cells.index).fillna(quantity["step"].astype("Int64"))
+
+    charge_text = _with_defaults(cells, tables, "charge")
+    charge_given = ~_blank(charge_text["text"])
+    charge_num = pd.to_numeric(charge_text["text"].astype(str).str.strip().str.replace("+", "", regex=False), errors="coerce")
+    bad_charge = charge_given & ~(charge_num.notna() & (charge_num == charge_num.round()))
+    reject(bad_charge, "charge", charge_text["text"], "charge '" + charge_text["text"].astype(str) + "' is not a whole number")
+    charge = pd.Series(pd.array(charge_num.where(charge_given & ~bad_charge), dtype="Float64").round().astype("Int64"), index=cells.index)
+
+    # 9. identity of the compound
+    ident_in = pd.DataFrame({f: cells[f].where(~_blank(cells[f])) for f in ("name", "cas", "smiles", "inchi")})
+    no_identity = ident_in.isna().all(axis=1)
+    reject(no_identity, "name", cells["name"], "row names no compound: give a name, CAS number, SMILES or InChI")
+    resolved = identity.resolve_identities(ident_in, synonyms=synonyms, cache=identity_cache)
+    ident_error = resolved["error"].notna() & ~no_identity & resolved["inchikey"].isna()
+    reject(ident_error & ident_in["smiles"].notna(), "smiles", cells["smiles"], resolved["error"])
+    reject(ident_error & ident_in["smiles"].isna() & ident_in["inchi"].notna(), "inchi", cells["inchi"], resolved["error"])
+
+    # 10. conversion to pKa of the acid form
+    q = quantity["quantity"]
+    x = parsed["value"]
+    is_k = q.isin(["Ka", "Kb"])
+    reject(is_k & x.le(0), "value", value_text, q + " '" + value_text.astype(str) + "' must be a positive number")
+    with np.errstate(divide="ignore", invalid="ignore"):
+        p_value = np.where(is_k, -np.log10(x.where(x > 0)), x)  # Ka, Kb -> pKa, pKb
+        # u(pK) = u(K) / (K ln 10), first-order propagation (GUM, JCGM 100:2008, eq. 10)
+        p_unc = np.where(is_k, uncertainty / (x * np.log(10)), uncertainty)
+    qualifier = parsed["qualifier"].where(parsed["qualifier"].notna(), None)
+    flip = {"<": ">", ">": "<", "<=": ">=", ">=": "<="}
+    # a bound on K is the opposite bound on pK; a base's pKb bound flips once more to pKa
+    flips = is_k.astype(int) + q.isin(["pKb", "Kb"]).astype(int)
+    qualifier = qualifier.where(flips % 2 == 0, qualifier.map(flip).fillna(qualifier))
+
+    ok_conditions = temperature_k.notna() & ionic_value.notna()
+    units = ionic["unit"].fillna("mol/L")  # a bare number in a constants table is molar by custom
+    is_molar = units.eq("mol/L") & ionic_value.gt(0)
+    molal = ionic_value.copy()
+    if (ok_conditions & is_molar).any():
+        rows = ok_conditions & is_molar
+        vals, errs = _on_unique(
+            lambda c, t: physchem.molar_to_molal(c, t), ionic_value[rows].to_numpy(), temperature_k[rows].to_numpy()
+        )
+        molal[rows] = vals
+        errs_s = pd.Series(errs, index=rows[rows].index)
+        reject(pd.Series(False, index=cells.index).mask(rows, errs_s.notna().reindex(cells.index, fill_value=False)), "temperature", temp_text["text"], errs_s.reindex(cells.index))
+
+    is_base = q.isin(["pKb", "Kb"])
+    pkw_used = pd.Series(np.nan, index=cells.index)
+    need_pkw = is_base & ok_conditions & molal.notna()
+    if need_pkw.any():
+        conc = ctype.eq("concentration") & need_pkw  # Kw of the same kind as the constants
+        for mask, func in (
+            (need_pkw & ~conc, lambda t, i: physchem.pkw(t)),
+            (conc, lambda t, i: physchem.pkw_at_ionic_strength(t, i)),
+        ):
+            if mask.any():
+                vals, errs = _on_unique(func, temperature_k[mask].to_numpy(), molal[mask].to_numpy())
+                pkw_used[mask] = vals
+                err_s = pd.Series(errs, index=mask[mask].index).reindex(cells.index)
+                reject(err_s.notna(), "temperature", temp_text["text"], "cannot convert " + q + " to pKa: " + err_s.astype(str))
+    pka = pd.Series(np.where(is_base, pkw_used - p_value, p_value), index=cells.index)
+
+    # 11. assemble; a row with any reject is not a measurement
+    all_rejects = pd.concat(rejects, ignore_index=True) if rejects else pd.DataFrame(columns=REJECTS.columns)
+    rejected_rows = pd.MultiIndex.from_frame(all_rejects[["source_id", "source_row"]])
+    key = pd.MultiIndex.from_frame(cells[["source_id", "source_row"]])
+    accepted = ~key.isin(rejected_rows) & pka.notna().to_numpy()
+    leftover = ~key.isin(rejected_rows) & ~accepted  # safety net: never drop a row silently
+    if leftover.any():
+        left = pd.Series(leftover, index=cells.index)
+        all_rejects = pd.concat(
+            [all_rejects, _rejects_for(cells, left, "value", value_text, "value could not be converted to a pKa")],
+            ignore_index=True,
+        )
+    acc = pd.Series(accepted, index=cells.index)
+
+    value_id = make_value_ids(cells["source_id"], cells["table_file"], cells["source_row"])
+    measurements = pd.DataFrame(
+        {
+            "value_id": value_id,
+            "compound_id": resolved["compound_id"],
+            "step": step,
+            "step_inferred": False,
+            "pka": pka,
+            "pka_uncertainty": pd.Series(p_unc, index=cells.index).abs(),
+            "qualifier": qualifier,
+            "temperature_k": temperature_k,
+            "ionic_strength_molal": molal,
+            "medium": ionic["medium"],
+            "solvent": medium["solvent"],
+            "constant_type": ctype,
+            "charge": charge,
+            "quantity_reported": q,
+            "value_reported": value_text,
+            "pkw_used": pkw_used,
+            "name_reported": cells["name"],
+            "cas_reported": cells["cas"],
+            "smiles_reported": cells["smiles"],
+            "method": _with_defaults(cells, tables, "method")["text"],
+            "reference": _with_defaults(cells, tables, "reference")["text"],
+            "source_id": cells["source_id"],
+            "source_row": cells["source_row"],
+            "copy_of": None,
+            "status": "ok",
+        }
+    )[acc]
+    filled = identity.infer_steps(measurements)
+    measurements["step"] = filled["step"].astype("Int64")
+    measurements["step_inferred"] = filled["step_inferred"].astype(bool)
+    measurements = MEASUREMENTS.validate(measurements.reset_index(drop=True))
+
+    lineage = _measurement_lineage(
+        cells[acc], tables, value_id[acc], quantity_text[acc], temp_text[acc], ionic_text[acc],
+        parsed[acc], pkw_used[acc], ionic_value[acc], molal[acc], units[acc], ctype[acc],
+    )
+
+    compounds = _compound_table(resolved[acc])
+    found = identity.identity_findings(resolved[acc], cells.loc[acc, "source_id"], value_id[acc])
+    return NormalizeResult(
+        measurements=measurements,
+        rejects=REJECTS.validate(all_rejects.sort_values(["source_id", "source_row", "field"]).reset_index(drop=True)),
+        lineage=LINEAGE.validate(lineage),
+        compounds=compounds,
+        identity_findings=found,
+    )
+
+
+def _compound_table(resolved: pd.DataFrame) -> pd.DataFrame:
+    """One row per compound: the first non-empty name, CAS and structure seen for it."""
+    cols = ["compound_id", "name", "inchikey", "smiles", "cas", "formula", "resolved_by"]
+    frame = resolved.reindex(columns=cols)
+    return (
+        frame.groupby("compound_id", sort=True, dropna=False)
+        .first()
+        .reset_index()[cols]
+    )
+
+
+def _json_lines(frame: pd.DataFrame) -> list[str]:
+    """Each row of ``frame`` as one JSON object (pandas' vectorized writer; NaN -> null)."""
+    if frame.empty:
+        return []
+    return frame.to_json(orient="records", lines=True, force_ascii=False).rstrip("\n").split("\n")
+
+
+def _measurement_lineage(
+    cells: pd.DataFrame,
+    tables: pd.DataFrame,
+    value_id: pd.Series,
+    quantity_text: pd.DataFrame,
+    temp_text: pd.DataFrame,
+    ionic_text: pd.DataFrame,
+    parsed: pd.DataFrame,
+    pkw_used: pd.Series,
+    ionic_value: pd.Series,
+    molal: pd.Series,
+    units: pd.Series,
+    ctype: pd.Series,
+) -> pd.DataFrame:
+    """Lineage steps of each accepted measurement, oldest first (the source cell is step 1)."""
+    t = tables.set_index(["source_id", "table_file"])
+    key = pd.MultiIndex.from_frame(cells[["source_id", "table_file"]])
+    sha = t["file_sha256"].reindex(key).to_numpy()
+    header = t["columns"].map(lambda c: c.get("value")).reindex(key).to_numpy()
+    location = cells["source_id"] + "/" + cells["table_file"] + "#row=" + cells["source_row"].astype(str)
+    inputs_cell = '["' + location.str.replace('"', '\\"', regex=False) + '"]'
+    steps: list[pd.DataFrame] = []
+
+    def add(order: int, operation: str, params: pd.DataFrame, inputs: pd.Series) -> None:
+        if params.empty:
+            return
+        steps.append(
+            pd.DataFrame(
+                {
+                    "target_id": value_id[params.index],
+                    "order": order,
+                    "operation": operation,
+                    "parameters": _json_lines(params),
+                    "inputs": inputs[params.index],
+                }
+            )
+        )
+
+    add(
+        1,
+        "read_cell",
+        pd.DataFrame(
+            {
+                "file": cells["source_id"] + "/" + cells["table_file"],
+                "sha256": sha,
+                "row": cells["source_row"],
+                "column": header,
+                "text": cells["value"],
+            },
+            index=cells.index,
+        ),
+        inputs_cell,
+    )
+    defaulted = pd.DataFrame(
+        {
+            "quantity": quantity_text["text"].where(quantity_text["from_default"]),
+            "temperature": temp_text["text"].where(temp_text["from_default"]),
+            "ionic_strength": ionic_text["text"].where(ionic_text["from_default"]),
+        },
+        index=cells.index,
+    )
+    any_default = defaulted.notna().any(axis=1)
+    add(2, "apply_descriptor_defaults", defaulted[any_default], inputs_cell)
+    add(
+        3,
+        "parse_value",
+        pd.DataFrame(
+            {
+                "quantity": quantity_text["text"],
+                "value": parsed["value"],
+                "uncertainty": parsed["uncertainty"],
+                "qualifier": parsed["qualifier"],
+            },
+            index=cells.index,
+        ),
+        inputs_cell,
+    )
+    own = '["' + value_id + '"]'
+    molar = units.eq("mol/L") & ionic_value.gt(0)
+    add(
+        4,
+        "ionic_strength_to_molal",
+        pd.DataFrame(
+            {
+                "from_mol_per_l": ionic_value,
+                "to_mol_per_kg": molal,
+                "method": "dilute aqueous solution: b = c / rho_w(T), rho_w from IAPWS-95",
+            },
+            index=cells.index,
+        )[molar],
+        own,
+    )
+    q = quantity_text["text"].astype(str).str.strip()
+    is_k = parsed.index.isin(q.index[q.str.match(r"(?i)^k[ab]")])
+    add(
+        5,
+        "k_to_pk",
+        pd.DataFrame({"formula": "pK = -log10(K)"}, index=cells.index)[is_k],
+        own,
+    )
+    base = pkw_used.notna()
+    add(
+        6,
+        "pkb_to_pka",
+        pd.DataFrame(
+            {
+                "formula": "pKa = pKw - pKb",
+                "pkw": pkw_used,
+                "pkw_release": PKW_RELEASE,
+                "constant_type": ctype,
+                "ionic_strength_molal": molal,
+            },
+            index=cells.index,
+        )[base],
+        own,
+    )
+    lineage = pd.concat(steps, ignore_index=True).sort_values(["target_id", "order"], kind="stable")
+    lineage["step_no"] = lineage.groupby("target_id").cumcount() + 1
+    return lineage[["target_id", "step_no", "operation", "parameters", "inputs"]].reset_index(drop=True)

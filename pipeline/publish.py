@@ -1,0 +1,107 @@
+"""Stage 5, publish: write the database atomically, so the last good file always survives.
+
+The tables go into a temporary file in the output's own folder; it is closed, reopened
+read-only and its row counts compared with what was meant to be written; only then is it
+renamed over the old file (``os.replace`` is atomic on one file system). A lock file beside the
+output serializes two builds aimed at the same file. This is the only stage that writes files.
+"""
+
+from __future__ import annotations
+
+import fcntl
+import os
+from collections.abc import Iterator, Mapping
+from contextlib import contextmanager
+from pathlib import Path
+
+import duckdb
+import pandas as pd
+
+from pipeline.schemas import published_ddl
+
+TABLE_ORDER = (
+    "sources",
+    "compounds",
+    "measurements",
+    "rejects",
+    "findings",
+    "recommended",
+    "lineage",
+    "build_info",
+)
+
+
+class PublishError(RuntimeError):
+    """The database could not be written; the previous file, if any, is untouched."""
+
+
+@contextmanager
+def build_lock(out_path: Path) -> Iterator[None]:
+    """Hold an exclusive lock on ``<out>.lock`` for the duration of a build."""
+    out_path.parent.mkdir(parents=True, exist_ok=True)
+    lock_path = out_path.with_name(out_path.name + ".lock")
+    with open(lock_path, "a+") as handle:
+        try:
+            fcntl.flock(handle, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            raise PublishError(
+                f"another kaledger build is writing {out_path} (lock {lock_path} is held); "
+                "wait for it to finish"
+            ) from None
+        try:
+            yield
+        finally:
+            fcntl.flock(handle, fcntl.LOCK_UN)
+
+
+def publish(tables: Mapping[str, pd.DataFrame], out_path: Path | str) -> Path:
+    """Write ``tables`` to the DuckDB file ``out_path`` atomically; return its path.
+
+    ``tables`` must hold every table of the published DDL (``schemas/kaledger.sql``); columns
+    are matched by name.
+    """
+    out_path = Path(out_path)
+    missing = [t for t in TABLE_ORDER if t not in tables]
+    if missing:
+        raise PublishError(f"cannot publish: table {missing[0]!r} was not built")
+    out_path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = out_path.with_name(f".{out_path.name}.tmp-{os.getpid()}")
+    tmp.unlink(missing_ok=True)
+    try:
+        con = duckdb.connect(str(tmp))
+        try:
+            con.execute(published_ddl())
+            for name in TABLE_ORDER:
+                frame = tables[name]
+                con.register("incoming", frame)
+                columns = [r[0] for r in con.execute(f"DESCRIBE {name}").fetchall()]
+                select = ", ".join(f'"{c}"' for c in columns)
+                con.execute(f"INSERT INTO {name} ({select}) SELECT {select} FROM incoming")
+                con.unregister("incoming")
+            con.execute("CHECKPOINT")
+        finally:
+            con.close()
+        check = duckdb.connect(str(tmp), read_only=True)
+        try:
+            for name in TABLE_ORDER:
+                (count,) = check.execute(f"SELECT count(*) FROM {name}").fetchone()
+                if count != len(tables[name]):
+                    raise PublishError(
+                        f"verification failed: table {name} holds {count} rows, expected {len(tables[name])}"
+                    )
+        finally:
+            check.close()
+        os.replace(tmp, out_path)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        Path(str(tmp) + ".wal").unlink(missing_ok=True)
+        raise
+    return out_path
+
+
+def open_database(path: Path | str) -> duckdb.DuckDBPyConnection:
+    """Open a published database read-only, with a clear error when it is missing."""
+    path = Path(path)
+    if not path.is_file():
+        raise FileNotFoundError(f"{path}: no kaledger database here; run 'kaledger build' first")
+    return duckdb.connect(str(path), read_only=True)
