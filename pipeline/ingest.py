@@ -90,12 +90,14 @@ def _read_delimited(text: str, delimiter: str, skip_rows: int) -> tuple[list[str
 
 
 def _read_xlsx(path: Path, sheet: str | None, skip_rows: int) -> tuple[list[str], list[list[str]], list[int]]:
+    from zipfile import BadZipFile
+
     from openpyxl import load_workbook
     from openpyxl.utils.exceptions import InvalidFileException
 
     try:
         book = load_workbook(path, read_only=True, data_only=True)
-    except (InvalidFileException, KeyError, OSError, ValueError) as exc:
+    except (InvalidFileException, BadZipFile, KeyError, OSError, ValueError) as exc:
         raise IngestError(f"{path}: is not a readable XLSX workbook ({exc})") from None
     try:
         if sheet is not None and sheet not in book.sheetnames:
