@@ -1,0 +1,1 @@
+"""kaledger: curation and validation pipeline for pKa/Ka reference data."""
