@@ -1,0 +1,1249 @@
+"""Compound identity: CAS check digits, structure standardization, name resolution, step numbers.
+
+This module knows nothing about source files. It takes pandas Series / DataFrames and returns
+DataFrames with the same index. Structures go through RDKit; names and CAS numbers are looked up
+in the offline identifier database of the ``chemicals`` package (no network). A steward's
+synonym table overrides that database.
+
+Identity of a compound is the standard InChIKey of its *standardized parent*: the as-given
+species (salt, hydrate, charged form) is reduced by
+
+1. ``MetalDisconnector`` (covalent metal bonds such as ``O[Na]`` become ion pairs),
+2. ``Normalizer`` (RDKit's functional-group normalization rules, e.g. charge-separated nitro),
+3. ``LargestFragmentChooser`` (keeps the largest fragment: counter-ions and solvents go),
+4. ``Uncharger`` (neutralizes charges by adding or removing H where possible),
+
+all from ``rdkit.Chem.MolStandardize.rdMolStandardize`` [1]_. The InChIKey is computed with
+RDKit's bundled InChI library using standard options [2]_. Tautomers are not canonicalized by
+RDKit here; the standard InChI layer already treats mobile hydrogen for most acid/base groups.
+Stereo and isotopes are kept as given.
+
+Pipeline-facing functions:
+
+* :func:`cas_check_digit_ok`, :func:`cas_is_missing`: CAS Registry Number rule [3]_.
+* :func:`standardize_structures`: SMILES / InChI -> parent SMILES, InChIKey, formula.
+* :func:`resolve_identities`: name / CAS / SMILES / InChI -> one ``compound_id`` per row.
+* :func:`identity_findings`: identity checks as a findings table.
+* :func:`infer_steps`: fill missing dissociation-step numbers where unambiguous.
+* :class:`IdentityCache`: persistent Parquet cache of RDKit and database results.
+
+References
+----------
+.. [1] RDKit: Open-source cheminformatics, MolStandardize module (a C++ port of MolVS),
+       https://www.rdkit.org/docs/source/rdkit.Chem.MolStandardize.rdMolStandardize.html
+.. [2] Heller, S. R.; McNaught, A.; Pletnev, I.; Stein, S.; Tchekhovskoi, D. InChI, the IUPAC
+       International Chemical Identifier. J. Cheminform. 2015, 7, 23.
+       https://doi.org/10.1186/s13321-015-0068-4
+.. [3] CAS, a division of the American Chemical Society. CAS Registry Number: check digit
+       verification. https://www.cas.org/support/documentation/chemical-substances/checkdig
+"""
+
+from __future__ import annotations
+
+import multiprocessing
+import os
+import tempfile
+from collections.abc import Callable, Sequence
+from concurrent.futures import ProcessPoolExecutor
+from pathlib import Path
+from typing import Any
+
+import chemicals
+import duckdb
+import numpy as np
+import pandas as pd
+import rdkit
+from chemicals import identifiers as chem_ids
+from rdkit import Chem, rdBase
+from rdkit.Chem.MolStandardize import rdMolStandardize
+from rdkit.Chem.rdMolDescriptors import CalcMolFormula
+
+__all__ = [
+    "CACHE_KINDS",
+    "FINDING_RULES",
+    "RESOLVED_BY",
+    "STANDARDIZE_RECIPE",
+    "IdentityCache",
+    "cache_version",
+    "cas_check_digit_ok",
+    "cas_is_missing",
+    "identity_findings",
+    "infer_steps",
+    "resolve_identities",
+    "standardize_structures",
+]
+
+#: Steps applied to every structure, in order; part of the cache version key.
+STANDARDIZE_RECIPE = "metal-disconnect>normalize>largest-fragment>uncharge"
+#: Bump when the cached columns or their meaning change.
+CACHE_SCHEMA = 1
+
+STRUCTURE_COLUMNS: tuple[str, ...] = (
+    "parent_smiles",
+    "inchikey",
+    "formula",
+    "input_smiles_canonical",
+    "error",
+)
+LOOKUP_COLUMNS: tuple[str, ...] = ("db_smiles", "db_cas", "db_name", "error")
+#: Cache kinds and the result columns each one stores.
+CACHE_KINDS: dict[str, tuple[str, ...]] = {
+    "smiles": STRUCTURE_COLUMNS,
+    "inchi": STRUCTURE_COLUMNS,
+    "name": LOOKUP_COLUMNS,
+    "cas": LOOKUP_COLUMNS,
+    "inchikey": LOOKUP_COLUMNS,
+}
+#: Values of ``resolved_by``, highest precedence first.
+RESOLVED_BY: tuple[str, ...] = ("smiles", "inchi", "synonym", "cas", "name")
+#: Rule name -> severity, in the order findings are reported.
+FINDING_RULES: dict[str, str] = {
+    "cas_check_digit": "warning",
+    "cas_structure_conflict": "warning",
+    "name_structure_mismatch": "warning",
+    "structure_multiple_cas": "info",
+    "unresolved_identity": "warning",
+}
+
+# Unique-input count from which work is spread over processes when n_jobs is not given.
+PARALLEL_MIN_UNIQUE = 20_000
+_CHUNK = 2_000
+# First part 2-7 digits without a leading zero, then 2 digits, then the check digit [3].
+_CAS_PATTERN = r"[1-9]\d{1,6}-\d{2}-\d"
+_CAS_DIGITS = 10  # at most 7 + 2 + 1 digits
+_LOOKUP_ERRORS = (ValueError, KeyError, IndexError, TypeError)
+
+
+# --------------------------------------------------------------------------------------------
+# text helpers
+# --------------------------------------------------------------------------------------------
+
+
+def _clean_text(
+    values: pd.Series | Sequence[object] | None, index: pd.Index | None = None
+) -> pd.Series:
+    """Strip and collapse whitespace; missing, NaN and empty text become ``<NA>`` (string dtype)."""
+    if values is None:
+        return pd.Series(pd.NA, index=index, dtype="string")
+    s = values if isinstance(values, pd.Series) else pd.Series(list(values), index=index)
+    s = s.astype("object").where(s.notna(), None).astype("string")
+    s = s.str.replace(r"\s+", " ", regex=True).str.strip()
+    return s.mask(s == "")
+
+
+def _join_messages(*parts: pd.Series) -> pd.Series:
+    """Join message Series with '; ', skipping missing or empty parts; all missing -> None."""
+    acc = pd.Series(pd.NA, index=parts[0].index, dtype="string")
+    for part in parts:
+        p = part.astype("string")
+        p = p.mask(p.str.strip() == "")
+        acc = acc.where(p.isna(), acc + "; " + p).fillna(p)
+    return _none_object(acc)
+
+
+def _quote(s: pd.Series) -> pd.Series:
+    return "'" + s.astype("string") + "'"
+
+
+def _none_object(s: pd.Series) -> pd.Series:
+    """Object Series with ``None`` for every missing value (for plain-Python consumers)."""
+    return s.astype("object").where(s.notna(), None)
+
+
+# --------------------------------------------------------------------------------------------
+# CAS Registry Numbers
+# --------------------------------------------------------------------------------------------
+
+
+def cas_is_missing(cas: pd.Series) -> np.ndarray:
+    """Mask of CAS cells that hold no text (None, NaN, ``<NA>``, empty or blank).
+
+    Parameters
+    ----------
+    cas : pandas.Series
+        CAS Registry Number text.
+
+    Returns
+    -------
+    numpy.ndarray of bool
+        True where no CAS was given. Use it beside :func:`cas_check_digit_ok`, which returns
+        False for both missing and invalid numbers.
+
+    References
+    ----------
+    .. [1] CAS. CAS Registry Number format. https://www.cas.org/support/documentation/chemical-substances/checkdig
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> cas_is_missing(pd.Series(["64-19-7", None, "  ", float("nan")])).tolist()
+    [False, True, True, True]
+    """
+    return _clean_text(cas).isna().to_numpy(dtype=bool)
+
+
+def _cas_analysis(
+    cas: pd.Series,
+) -> tuple[pd.Series, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Return (clean text, missing, well-formed, expected check digit (-1 if not formed), ok)."""
+    s = _clean_text(cas)
+    missing = s.isna().to_numpy(dtype=bool)
+    formed = s.str.fullmatch(_CAS_PATTERN).fillna(False).to_numpy(dtype=bool)
+    expected = np.full(len(s), -1, dtype=np.int64)
+    ok = np.zeros(len(s), dtype=bool)
+    if formed.any():
+        digits = s[formed].str.replace("-", "", regex=False).str.zfill(_CAS_DIGITS)
+        arr = np.frombuffer("".join(digits).encode("ascii"), dtype=np.uint8)
+        arr = arr.reshape(-1, _CAS_DIGITS).astype(np.int64) - ord("0")
+        # position 1 is the digit just left of the check digit; zero padding adds nothing
+        weights = np.arange(_CAS_DIGITS - 1, 0, -1, dtype=np.int64)
+        exp = (arr[:, :-1] @ weights) % 10
+        expected[formed] = exp
+        ok[formed] = exp == arr[:, -1]
+    return s, missing, formed, expected, ok
+
+
+def cas_check_digit_ok(cas: pd.Series) -> np.ndarray:
+    """Vectorized CAS Registry Number format and check-digit test.
+
+    A CAS RN has three hyphen-separated parts of 2-7, 2 and 1 digits; the last is the check
+    digit R = (sum of i * d_i) mod 10, with i = 1 for the digit just left of the check digit
+    and counting up leftwards [1]_. Surrounding whitespace is ignored. A leading zero is
+    rejected (CAS numbers are printed without one; common practice).
+
+    Parameters
+    ----------
+    cas : pandas.Series
+        CAS Registry Number text, any dtype; missing values allowed.
+
+    Returns
+    -------
+    numpy.ndarray of bool
+        True where the text is a well-formed CAS RN with a correct check digit. Missing cells
+        are False too; tell them apart with :func:`cas_is_missing`.
+
+    References
+    ----------
+    .. [1] CAS. Check Digit Verification of CAS Registry Numbers.
+           https://www.cas.org/support/documentation/chemical-substances/checkdig
+
+    Examples
+    --------
+    Water is 7732-18-5: 8*1 + 1*2 + 2*3 + 3*4 + 7*5 + 7*6 = 105, 105 mod 10 = 5.
+
+    >>> import pandas as pd
+    >>> cas_check_digit_ok(pd.Series(["7732-18-5", "7732-18-6", "64-19-7", None])).tolist()
+    [True, False, True, False]
+    """
+    return _cas_analysis(cas)[4]
+
+
+# --------------------------------------------------------------------------------------------
+# persistent cache
+# --------------------------------------------------------------------------------------------
+
+
+def cache_version() -> str:
+    """Version key of cached identity results.
+
+    Any change of RDKit, its InChI library, ``chemicals``, the standardization recipe or the
+    cache layout gives a different key, and rows stored under another key are ignored.
+
+    Returns
+    -------
+    str
+        The version key.
+
+    References
+    ----------
+    .. [1] RDKit version string, ``rdkit.__version__``; InChI library version,
+           ``rdkit.Chem.GetInchiVersion()``.
+
+    Examples
+    --------
+    >>> cache_version().startswith("kaledger-identity/")
+    True
+    """
+    return (
+        f"kaledger-identity/{CACHE_SCHEMA}; rdkit {rdkit.__version__}; "
+        f"inchi {Chem.GetInchiVersion()}; chemicals {chemicals.__version__}; {STANDARDIZE_RECIPE}"
+    )
+
+
+def _check_kind(kind: str) -> tuple[str, ...]:
+    try:
+        return CACHE_KINDS[kind]
+    except KeyError:
+        raise ValueError(
+            f"unknown identity cache kind {kind!r}; valid kinds: {', '.join(CACHE_KINDS)}"
+        ) from None
+
+
+class IdentityCache:
+    """Persistent cache of identity results keyed by (kind, input text).
+
+    Kinds and their stored columns are listed in :data:`CACHE_KINDS` (``smiles`` and ``inchi``
+    hold standardization results; ``name``, ``cas`` and ``inchikey`` hold ``chemicals``
+    database hits). The file is a Parquet file written by DuckDB; every row carries the
+    :func:`cache_version` key and rows under another key are dropped when the file is read,
+    so an RDKit or ``chemicals`` upgrade recomputes everything. Writes are atomic (temporary
+    file, then rename).
+
+    Parameters
+    ----------
+    path : str or pathlib.Path
+        Parquet file, e.g. ``build/cache/identity.parquet``; created on first :meth:`save`.
+    version : str, optional
+        Version key; default :func:`cache_version`.
+
+    Attributes
+    ----------
+    hits, misses : int
+        Lookups answered / not answered since the cache was opened.
+    stale_rows : int
+        Rows found in the file under another version key (ignored).
+
+    References
+    ----------
+    .. [1] Apache Parquet file format, https://parquet.apache.org/docs/file-format/
+    .. [2] DuckDB, ``COPY ... TO ... (FORMAT parquet)`` and ``read_parquet``,
+           https://duckdb.org/docs/data/parquet/overview
+
+    Examples
+    --------
+    >>> import tempfile, pathlib
+    >>> path = pathlib.Path(tempfile.mkdtemp()) / "identity.parquet"
+    >>> cache = IdentityCache(path)
+    >>> _ = standardize_structures(pd.Series(["CC(=O)[O-].[Na+]"]), None, cache=cache)
+    >>> IdentityCache(path).lookup("smiles", ["CC(=O)[O-].[Na+]"])["inchikey"].iloc[0]
+    'QTBSBXVTEAMEQO-UHFFFAOYSA-N'
+    """
+
+    def __init__(self, path: str | os.PathLike[str], version: str | None = None) -> None:
+        self.path = Path(path)
+        self.version = version if version is not None else cache_version()
+        self.hits = 0
+        self.misses = 0
+        self.stale_rows = 0
+        self._frames: dict[str, pd.DataFrame] = {
+            kind: pd.DataFrame(columns=list(cols), index=pd.Index([], name="text"), dtype="object")
+            for kind, cols in CACHE_KINDS.items()
+        }
+        self._dirty = False
+        if self.path.exists():
+            self._load()
+
+    def _load(self) -> None:
+        with duckdb.connect() as con:
+            rows = con.execute("SELECT * FROM read_parquet(?)", [str(self.path)]).df()
+        current = rows["version"] == self.version
+        self.stale_rows = int((~current).sum())
+        rows = rows[current]
+        for kind, cols in CACHE_KINDS.items():
+            part = rows[rows["kind"] == kind]
+            frame = part.set_index("text")[list(cols)].astype("object")
+            frame = frame.where(frame.notna(), None)
+            frame.index.name = "text"
+            self._frames[kind] = frame[~frame.index.duplicated(keep="last")]
+
+    def __len__(self) -> int:
+        return sum(len(f) for f in self._frames.values())
+
+    def lookup(self, kind: str, texts: Sequence[str] | pd.Index) -> pd.DataFrame:
+        """Cached rows for ``texts`` (those present), indexed by text."""
+        _check_kind(kind)
+        frame = self._frames[kind]
+        keys = pd.Index(texts)
+        found = keys[keys.isin(frame.index)]
+        self.hits += len(found)
+        self.misses += len(keys) - len(found)
+        return frame.loc[found]
+
+    def store(self, kind: str, results: pd.DataFrame) -> None:
+        """Add results (indexed by text, with the kind's columns); later rows win."""
+        cols = _check_kind(kind)
+        if results.empty:
+            return
+        missing = [c for c in cols if c not in results.columns]
+        if missing:
+            raise ValueError(
+                f"results for cache kind {kind!r} lack columns {missing}; expected {list(cols)}"
+            )
+        new = results[list(cols)].astype("object")
+        new = new.where(new.notna(), None)
+        old = self._frames[kind]
+        merged = pd.concat([old[~old.index.isin(new.index)], new]) if len(old) else new
+        merged.index.name = "text"
+        self._frames[kind] = merged
+        self._dirty = True
+
+    def save(self, force: bool = False) -> None:
+        """Write the cache atomically if anything was stored since the last save."""
+        if not (self._dirty or force):
+            return
+        all_cols = sorted({c for cols in CACHE_KINDS.values() for c in cols})
+        parts = []
+        for kind, frame in self._frames.items():
+            part = frame.reset_index().reindex(columns=["text", *all_cols])
+            part.insert(0, "kind", kind)
+            parts.append(part)
+        rows = pd.concat(parts, ignore_index=True).astype("object")
+        rows = rows.where(rows.notna(), None)
+        rows["version"] = self.version
+        self.path.parent.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(prefix=self.path.name + ".", suffix=".tmp", dir=self.path.parent)
+        os.close(fd)
+        select = ", ".join(f'CAST("{c}" AS VARCHAR) AS "{c}"' for c in rows.columns)
+        target = tmp.replace("'", "''")
+        try:
+            with duckdb.connect() as con:
+                con.register("cache_rows", rows)
+                con.execute(
+                    f"COPY (SELECT {select} FROM cache_rows) TO '{target}' (FORMAT parquet)"
+                )
+            os.replace(tmp, self.path)
+        finally:
+            if os.path.exists(tmp):
+                os.unlink(tmp)
+        self._dirty = False
+
+
+def _cached(
+    kind: str,
+    texts: pd.Index,
+    compute: Callable[[list[str]], list[tuple[str | None, ...]]],
+    cache: IdentityCache | None,
+) -> pd.DataFrame:
+    """Results for unique ``texts``: cache hits plus ``compute(list_of_texts)`` for the rest."""
+    cols = list(CACHE_KINDS[kind])
+    texts = pd.Index(texts).dropna().unique()
+    if cache is not None:
+        hit = cache.lookup(kind, texts)
+        todo = texts[~texts.isin(hit.index)]
+    else:
+        hit = pd.DataFrame(columns=cols, dtype="object")
+        todo = texts
+    if len(todo):
+        rows = compute(list(todo))
+        new = pd.DataFrame(rows, columns=cols, index=pd.Index(todo, name="text"), dtype="object")
+        if cache is not None:
+            cache.store(kind, new)
+        out = pd.concat([hit, new]) if len(hit) else new
+    else:
+        out = hit
+    return out.reindex(texts)
+
+
+# --------------------------------------------------------------------------------------------
+# RDKit standardization (worker side: runs over unique texts only)
+# --------------------------------------------------------------------------------------------
+
+_TOOLS: dict[str, Any] = {}
+
+
+def _tools() -> dict[str, Any]:
+    if not _TOOLS:
+        _TOOLS["metal"] = rdMolStandardize.MetalDisconnector()
+        _TOOLS["normalizer"] = rdMolStandardize.Normalizer()
+        _TOOLS["fragment"] = rdMolStandardize.LargestFragmentChooser()
+        _TOOLS["uncharger"] = rdMolStandardize.Uncharger()
+    return _TOOLS
+
+
+def _parse_failure(kind: str, text: str) -> str:
+    if kind == "smiles":
+        raw = Chem.MolFromSmiles(text, sanitize=False)
+        if raw is not None:
+            try:
+                Chem.SanitizeMol(raw)
+            except ValueError as exc:  # MolSanitizeException derives from ValueError
+                return f"SMILES {text!r} is not a valid structure: {exc}"
+        return f"SMILES {text!r} could not be parsed"
+    if not text.startswith("InChI="):
+        return f"InChI {text!r} could not be parsed (an InChI starts with 'InChI=')"
+    return f"InChI {text!r} could not be parsed"
+
+
+def _standardize_one(kind: str, text: str) -> tuple[str | None, ...]:
+    tools = _tools()
+    mol = Chem.MolFromSmiles(text) if kind == "smiles" else Chem.MolFromInchi(text)
+    label = "SMILES" if kind == "smiles" else "InChI"
+    if mol is None:
+        return (None, None, None, None, _parse_failure(kind, text))
+    if mol.GetNumAtoms() == 0:
+        return (None, None, None, None, f"{label} {text!r} holds no atoms")
+    try:
+        given = Chem.MolToSmiles(mol)
+        parent = tools["metal"].Disconnect(mol)
+        parent = tools["normalizer"].normalize(parent)
+        parent = tools["fragment"].choose(parent)
+        parent = tools["uncharger"].uncharge(parent)
+        parent_smiles = Chem.MolToSmiles(parent)
+        key = Chem.MolToInchiKey(parent) or None
+        formula = CalcMolFormula(parent)
+    except (ValueError, RuntimeError) as exc:
+        return (None, None, None, None, f"{label} {text!r} could not be standardized: {exc}")
+    error = None if key else f"no InChI could be generated for the parent {parent_smiles!r}"
+    return (parent_smiles, key, formula, given, error)
+
+
+def _standardize_texts(kind: str, texts: Sequence[str]) -> list[tuple[str | None, ...]]:
+    """Standardize a list of unique SMILES or InChI texts (one worker's share)."""
+    with rdBase.BlockLogs():
+        return [_standardize_one(kind, t) for t in texts]
+
+
+def _standardize_parallel(
+    kind: str, texts: list[str], n_jobs: int | None
+) -> list[tuple[str | None, ...]]:
+    if n_jobs is None:
+        n_jobs = (os.cpu_count() or 1) if len(texts) >= PARALLEL_MIN_UNIQUE else 1
+    if n_jobs <= 1 or len(texts) < 2 * _CHUNK:
+        return _standardize_texts(kind, texts)
+    chunks = [texts[i : i + _CHUNK] for i in range(0, len(texts), _CHUNK)]
+    ctx = multiprocessing.get_context("spawn")
+    with ProcessPoolExecutor(max_workers=n_jobs, mp_context=ctx) as pool:
+        parts = pool.map(_standardize_texts, [kind] * len(chunks), chunks)
+        return [row for part in parts for row in part]
+
+
+def _standardize_unique(
+    kind: str, texts: pd.Index, cache: IdentityCache | None, n_jobs: int | None = None
+) -> pd.DataFrame:
+    return _cached(kind, texts, lambda todo: _standardize_parallel(kind, todo, n_jobs), cache)
+
+
+def _rows_from(results: pd.DataFrame, keys: pd.Series, cols: Sequence[str]) -> pd.DataFrame:
+    """Map unique-text results back onto rows (``keys`` holds each row's text or NA)."""
+    idx = pd.Index(keys.astype("object").where(keys.notna(), None))
+    if len(results):
+        out = results.reindex(idx)[list(cols)]
+    else:
+        out = pd.DataFrame(None, index=idx, columns=list(cols), dtype="object")
+    out.index = keys.index
+    return out.astype("object").where(out.notna(), None)
+
+
+def standardize_structures(
+    smiles: pd.Series | None,
+    inchi: pd.Series | None,
+    cache: IdentityCache | None = None,
+    n_jobs: int | None = None,
+    *,
+    save: bool = True,
+) -> pd.DataFrame:
+    """Standardize given structures to their parent and compute its InChIKey.
+
+    The SMILES is used where one is given and parses; otherwise the InChI. The parent is the
+    as-given species after metal disconnection, functional-group normalization, keeping the
+    largest fragment and neutralizing charges [1]_; its standard InChIKey comes from RDKit's
+    InChI library [2]_. Work runs over unique inputs only (dedupe, compute, map back), through
+    ``cache`` when one is given, and over ``n_jobs`` processes (default: all cores once there
+    are at least ``PARALLEL_MIN_UNIQUE`` new unique inputs). Worker processes use the
+    "spawn" start method (no fork of a process holding DuckDB or other threads), so a script
+    that reaches the parallel path must guard its entry point with
+    ``if __name__ == "__main__":``; pass ``n_jobs=1`` to stay in one process.
+
+    Parameters
+    ----------
+    smiles, inchi : pandas.Series or None
+        Structure text per row (missing allowed). When both are given they share an index.
+    cache : IdentityCache, optional
+        Cache read before and written (saved) after the computation.
+    n_jobs : int, optional
+        Worker processes for new inputs.
+    save : bool, default True
+        Save the cache before returning (callers that batch several steps pass False).
+
+    Returns
+    -------
+    pandas.DataFrame
+        Same index; columns ``parent_smiles``, ``inchikey``, ``formula`` (Hill formula of the
+        parent), ``input_smiles_canonical`` (canonical SMILES of the as-given species, charge
+        kept), ``structure_from`` ("smiles", "inchi" or None) and ``error`` (None or a reason;
+        also set when the SMILES and InChI of a row give different parents).
+
+    References
+    ----------
+    .. [1] RDKit MolStandardize (MetalDisconnector, Normalizer, LargestFragmentChooser,
+           Uncharger), https://www.rdkit.org/docs/source/rdkit.Chem.MolStandardize.rdMolStandardize.html
+    .. [2] Heller, S. R. et al. InChI, the IUPAC International Chemical Identifier.
+           J. Cheminform. 2015, 7, 23. https://doi.org/10.1186/s13321-015-0068-4
+
+    Examples
+    --------
+    Sodium acetate reduces to acetic acid (InChIKey as computed by RDKit's InChI):
+
+    >>> import pandas as pd
+    >>> out = standardize_structures(pd.Series(["CC(=O)[O-].[Na+]", "C(C"]), None)
+    >>> out.loc[0, ["parent_smiles", "inchikey", "input_smiles_canonical"]].tolist()
+    ['CC(=O)O', 'QTBSBXVTEAMEQO-UHFFFAOYSA-N', 'CC(=O)[O-].[Na+]']
+    >>> out.loc[1, "error"]
+    "SMILES 'C(C' could not be parsed"
+    """
+    if smiles is None and inchi is None:
+        raise ValueError("standardize_structures needs smiles, inchi or both; both were None")
+    if smiles is not None and inchi is not None and not smiles.index.equals(inchi.index):
+        raise ValueError("smiles and inchi must share one index; got different indexes")
+    index = smiles.index if smiles is not None else inchi.index if inchi is not None else None
+    assert index is not None
+    s = _clean_text(smiles, index)
+    i = _clean_text(inchi, index)
+    cols = [*STRUCTURE_COLUMNS]
+    sm = _rows_from(_standardize_unique("smiles", pd.Index(s.dropna()), cache, n_jobs), s, cols)
+    inn = _rows_from(_standardize_unique("inchi", pd.Index(i.dropna()), cache, n_jobs), i, cols)
+    sm_ok = sm["inchikey"].notna()
+    in_ok = inn["inchikey"].notna()
+    use_inchi = ~sm_ok & in_ok
+    out = sm[cols].copy()
+    out.loc[use_inchi, cols] = inn.loc[use_inchi, cols]
+    out["structure_from"] = np.where(sm_ok, "smiles", np.where(use_inchi, "inchi", None))
+    out["structure_from"] = _none_object(out["structure_from"])
+
+    sm_err = sm["error"].where(s.notna())
+    in_err = inn["error"].where(i.notna())
+    rescued = pd.Series(
+        np.where(s.notna() & ~sm_ok & use_inchi, "the structure was taken from the InChI", None),
+        index=index,
+    )
+    differ = sm_ok & in_ok & (sm["inchikey"] != inn["inchikey"])
+    clash = (
+        "SMILES "
+        + _quote(s)
+        + " and InChI "
+        + _quote(i)
+        + " give different parents ("
+        + sm["inchikey"].astype("string")
+        + " vs "
+        + inn["inchikey"].astype("string")
+        + "); the SMILES was used"
+    ).where(differ)
+    out["error"] = _join_messages(sm_err, in_err, rescued, clash)
+    if cache is not None and save:
+        cache.save()
+    return out[
+        [
+            "parent_smiles",
+            "inchikey",
+            "formula",
+            "input_smiles_canonical",
+            "structure_from",
+            "error",
+        ]
+    ]
+
+
+# --------------------------------------------------------------------------------------------
+# chemicals database lookups
+# --------------------------------------------------------------------------------------------
+
+
+def _lookup_texts(kind: str, texts: Sequence[str]) -> list[tuple[str | None, ...]]:
+    """Look up names, CAS numbers or InChIKeys in the chemicals offline database."""
+    label = {"name": "name", "cas": "CAS", "inchikey": "InChIKey"}[kind]
+    out: list[tuple[str | None, ...]] = []
+    for text in texts:
+        query = f"InChIKey={text}" if kind == "inchikey" else text
+        try:
+            hit = chem_ids.search_chemical(query)
+        except _LOOKUP_ERRORS:
+            hit = None
+        if hit is None or not getattr(hit, "smiles", None):
+            out.append((None, None, None, f"{label} {text!r} is not in the chemicals database"))
+        else:
+            out.append((hit.smiles, hit.CASs, hit.common_name, None))
+    return out
+
+
+def _lookup_unique(kind: str, texts: pd.Index, cache: IdentityCache | None) -> pd.DataFrame:
+    return _cached(kind, texts, lambda todo: _lookup_texts(kind, todo), cache)
+
+
+def _parent_keys(db_smiles: pd.Series, cache: IdentityCache | None) -> pd.DataFrame:
+    """Parent InChIKey / SMILES for database SMILES (index kept)."""
+    keys = _clean_text(db_smiles)
+    res = _standardize_unique("smiles", pd.Index(keys.dropna()), cache)
+    return _rows_from(res, keys, ["parent_smiles", "inchikey"])
+
+
+def _prepare_synonyms(synonyms: pd.DataFrame | None, cache: IdentityCache | None) -> pd.DataFrame:
+    """Steward synonyms indexed by casefolded, whitespace-normalized synonym."""
+    cols = ["inchikey", "parent_smiles", "cas"]
+    if synonyms is None or synonyms.empty:
+        return pd.DataFrame(columns=cols, index=pd.Index([], name="key"), dtype="object")
+    missing = [c for c in ("synonym", "smiles") if c not in synonyms.columns]
+    if missing:
+        raise ValueError(
+            f"synonyms table lacks column(s) {missing}; required: ['synonym', 'smiles'], "
+            f"optional: ['cas', 'note']; got {list(synonyms.columns)}"
+        )
+    syn = pd.DataFrame({"key": _clean_text(synonyms["synonym"]).str.casefold()})
+    st = standardize_structures(synonyms["smiles"], None, cache=cache, save=False)
+    bad = syn["key"].isna() | st["inchikey"].isna()
+    if bad.any():
+        first = synonyms[bad].iloc[0]
+        reason = st.loc[bad, "error"].iloc[0] or "empty synonym or SMILES"
+        raise ValueError(
+            f"synonyms table: {int(bad.sum())} row(s) unusable, first synonym "
+            f"{first['synonym']!r} with SMILES {first['smiles']!r}: {reason}"
+        )
+    syn["inchikey"] = st["inchikey"]
+    syn["parent_smiles"] = st["parent_smiles"]
+    if "cas" in synonyms.columns:
+        cas_s, _, _, _, ok = _cas_analysis(synonyms["cas"])
+        if (cas_s.notna().to_numpy() & ~ok).any():
+            wrong = cas_s[cas_s.notna().to_numpy() & ~ok].tolist()
+            raise ValueError(f"synonyms table: CAS number(s) {wrong} fail the CAS check-digit rule")
+        syn["cas"] = _none_object(cas_s)
+    else:
+        syn["cas"] = None
+    conflict = syn.groupby("key")["inchikey"].nunique()
+    conflict = conflict[conflict > 1]
+    if len(conflict):
+        raise ValueError(
+            f"synonyms table: synonym(s) {conflict.index.tolist()} map to more than one structure"
+        )
+    syn = syn.drop_duplicates("key", keep="first").set_index("key")
+    return syn[cols]
+
+
+# --------------------------------------------------------------------------------------------
+# resolution
+# --------------------------------------------------------------------------------------------
+
+
+def resolve_identities(
+    frame: pd.DataFrame,
+    synonyms: pd.DataFrame | None = None,
+    cache: IdentityCache | None = None,
+    n_jobs: int | None = None,
+) -> pd.DataFrame:
+    """Resolve each row's compound from its structure, name or CAS Registry Number.
+
+    Precedence: a given structure (SMILES, else InChI) > the steward ``synonyms`` table >
+    the CAS number (steward table, then the ``chemicals`` database) > the name via the
+    ``chemicals`` database. Names are matched case-insensitively with whitespace collapsed.
+    Every database answer is reduced to its standardized parent (see
+    :func:`standardize_structures`), so a salt's CAS or name maps to the parent acid/base.
+
+    Parameters
+    ----------
+    frame : pandas.DataFrame
+        Columns ``name``, ``cas``, ``smiles``, ``inchi`` (text, missing allowed; an absent
+        column counts as all missing); any index.
+    synonyms : pandas.DataFrame, optional
+        Steward synonyms: columns ``synonym``, ``smiles``, optional ``cas`` and ``note``. They
+        override the database for name (and, via ``cas``, CAS) lookups. A synonym whose SMILES
+        does not parse, or that maps to two structures, raises ``ValueError``.
+    cache : IdentityCache, optional
+        Cache for RDKit and database results (saved before returning).
+    n_jobs : int, optional
+        Worker processes for standardizing new structures.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Same index, columns:
+
+        - ``compound_id``: the parent InChIKey when a structure is known; otherwise a stable
+          text id ``"unresolved:name:" + casefolded name``, else ``"unresolved:cas:" + CAS``,
+          else ``"unresolved:smiles:"`` / ``"unresolved:inchi:"`` + the given text; None for a
+          row that names nothing.
+        - ``inchikey``, ``smiles`` (parent SMILES), ``formula`` (parent).
+        - ``cas``: as given when valid, else the steward's or database's CAS of the parent.
+        - ``name``: as given (whitespace collapsed), else the database's common name.
+        - ``resolved_by``: one of :data:`RESOLVED_BY` or None.
+        - ``cas_valid``: boolean (pandas ``boolean`` dtype), ``<NA>`` where no CAS was given.
+        - ``cas_given``: the given CAS text (whitespace collapsed), kept for messages.
+        - ``name_inchikey``: parent InChIKey the name resolves to (synonyms, then database).
+        - ``cas_inchikey``: parent InChIKey the CAS resolves to (synonyms, then database).
+        - ``error``: None or the reasons (structure errors; why nothing resolved).
+
+    References
+    ----------
+    .. [1] ``chemicals`` package, ``chemicals.identifiers.search_chemical`` (offline PubChem-
+           derived identifier tables), https://chemicals.readthedocs.io/chemicals.identifiers.html
+    .. [2] CAS. Check Digit Verification of CAS Registry Numbers,
+           https://www.cas.org/support/documentation/chemical-substances/checkdig
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> rows = pd.DataFrame({"name": ["ethanoic acid", None], "cas": [None, "64-19-7"],
+    ...                      "smiles": [None, None], "inchi": [None, None]})
+    >>> out = resolve_identities(rows)
+    >>> out["compound_id"].tolist(), out["resolved_by"].tolist()
+    (['QTBSBXVTEAMEQO-UHFFFAOYSA-N', 'QTBSBXVTEAMEQO-UHFFFAOYSA-N'], ['name', 'cas'])
+    """
+    index = frame.index
+    name = _clean_text(frame["name"] if "name" in frame else None, index)
+    name_key = name.str.casefold()
+    smiles_in = _clean_text(frame["smiles"] if "smiles" in frame else None, index)
+    inchi_in = _clean_text(frame["inchi"] if "inchi" in frame else None, index)
+    cas_s, cas_missing, _, _, cas_ok = _cas_analysis(
+        frame["cas"] if "cas" in frame else pd.Series(None, index=index, dtype="object")
+    )
+    cas_s.index = index
+
+    st = standardize_structures(smiles_in, inchi_in, cache=cache, n_jobs=n_jobs, save=False)
+    syn = _prepare_synonyms(synonyms, cache)
+
+    # --- synonym hits by name
+    syn_rows = _rows_from(syn, name_key, ["inchikey", "parent_smiles", "cas"])
+    syn_hit = syn_rows["inchikey"].notna()
+
+    # --- CAS: steward table first, then the database
+    valid_cas = cas_s.where(cas_ok)
+    syn_by_cas = syn[syn["cas"].notna()].drop_duplicates("cas").set_index("cas")
+    cas_syn = _rows_from(syn_by_cas, valid_cas, ["inchikey", "parent_smiles"])
+    need_db_cas = valid_cas.where(cas_syn["inchikey"].isna())
+    cas_db = _rows_from(
+        _lookup_unique("cas", pd.Index(need_db_cas.dropna()), cache), need_db_cas, LOOKUP_COLUMNS
+    )
+    cas_par = _parent_keys(cas_db["db_smiles"], cache)
+    cas_key = cas_syn["inchikey"].fillna(cas_par["inchikey"])
+    cas_smiles = cas_syn["parent_smiles"].fillna(cas_par["parent_smiles"])
+
+    # --- name via the database (rows whose name is not a steward synonym)
+    need_db_name = name.where(~syn_hit)
+    name_db = _rows_from(
+        _lookup_unique("name", pd.Index(need_db_name.dropna()), cache), need_db_name, LOOKUP_COLUMNS
+    )
+    name_par = _parent_keys(name_db["db_smiles"], cache)
+    name_inchikey = syn_rows["inchikey"].fillna(name_par["inchikey"])
+
+    # --- precedence: structure > synonym > CAS > name
+    has_struct = st["inchikey"].notna()
+    by_syn = ~has_struct & syn_hit
+    by_cas = ~has_struct & ~by_syn & cas_key.notna()
+    by_name = ~has_struct & ~by_syn & ~by_cas & name_par["inchikey"].notna()
+    resolved_by = st["structure_from"].where(has_struct)
+    resolved_by = resolved_by.mask(by_syn, "synonym").mask(by_cas, "cas").mask(by_name, "name")
+
+    inchikey = st["inchikey"].where(has_struct)
+    inchikey = inchikey.mask(by_syn, syn_rows["inchikey"]).mask(by_cas, cas_key)
+    inchikey = inchikey.mask(by_name, name_par["inchikey"])
+    parent = st["parent_smiles"].where(has_struct)
+    parent = parent.mask(by_syn, syn_rows["parent_smiles"]).mask(by_cas, cas_smiles)
+    parent = parent.mask(by_name, name_par["parent_smiles"])
+    inchikey, parent = _none_object(inchikey), _none_object(parent)
+
+    # formula of the parent: from the structure result or a standardization of the parent SMILES
+    formula = st["formula"].where(has_struct)
+    need_formula = parent.where(~has_struct & pd.Series(inchikey, index=index).notna())
+    if need_formula.notna().any():
+        f_res = _standardize_unique("smiles", pd.Index(need_formula.dropna()), cache)
+        formula = formula.fillna(_rows_from(f_res, need_formula, ["formula"])["formula"])
+
+    # --- database entry of the parent, for a missing CAS or name
+    need_entry = inchikey.where(~(pd.Series(cas_ok, index=index)) | name.isna())
+    entry = _rows_from(
+        _lookup_unique("inchikey", pd.Index(need_entry.dropna()), cache), need_entry, LOOKUP_COLUMNS
+    )
+    cas_out = valid_cas.astype("object")
+    cas_out = cas_out.where(cas_out.notna(), syn_rows["cas"].where(by_syn))
+    cas_out = cas_out.where(pd.notna(cas_out), entry["db_cas"])
+    name_out = name.astype("object")
+    name_out = name_out.where(name_out.notna(), entry["db_name"])
+    name_out = name_out.where(pd.notna(name_out), cas_db["db_name"])
+
+    # --- stable id for rows without a structure
+    unresolved = (
+        ("unresolved:name:" + name_key)
+        .fillna("unresolved:cas:" + cas_s)
+        .fillna("unresolved:smiles:" + smiles_in)
+        .fillna("unresolved:inchi:" + inchi_in)
+    )
+    compound_id = _none_object(pd.Series(inchikey, index=index).astype("object").fillna(unresolved))
+
+    cas_valid = pd.array(np.where(cas_missing, None, cas_ok), dtype="boolean")
+
+    # --- reasons when nothing resolved
+    nothing = pd.Series(inchikey, index=index).isna()
+    given_any = (
+        name.notna() | ~pd.Series(cas_missing, index=index) | smiles_in.notna() | inchi_in.notna()
+    )
+    why_name = (
+        "name " + _quote(name) + " is neither a steward synonym nor in the chemicals database"
+    ).where(nothing & name.notna())
+    why_cas_bad = ("CAS " + _quote(cas_s) + " fails the CAS check-digit rule").where(
+        nothing & pd.Series(~cas_missing & ~cas_ok, index=index)
+    )
+    why_cas_db = ("CAS " + _quote(cas_s) + " is not in the chemicals database").where(
+        nothing & pd.Series(cas_ok, index=index)
+    )
+    why_none = pd.Series(
+        np.where(nothing & ~given_any, "no name, CAS, SMILES or InChI given", None), index=index
+    )
+    reasons = _join_messages(why_name, why_cas_bad, why_cas_db)
+    unfound = ("no structure found: " + reasons.astype("string")).where(reasons.notna())
+    error = _join_messages(st["error"], unfound, why_none)
+
+    out = pd.DataFrame(
+        {
+            "compound_id": compound_id,
+            "inchikey": inchikey,
+            "smiles": parent,
+            "formula": _none_object(formula),
+            "cas": _none_object(pd.Series(cas_out, index=index)),
+            "name": _none_object(pd.Series(name_out, index=index)),
+            "resolved_by": _none_object(resolved_by),
+            "cas_valid": cas_valid,
+            "cas_given": _none_object(cas_s),
+            "name_inchikey": _none_object(name_inchikey),
+            "cas_inchikey": _none_object(cas_key),
+            "error": _none_object(error),
+        },
+        index=index,
+    )
+    if cache is not None:
+        cache.save()
+    return out
+
+
+# --------------------------------------------------------------------------------------------
+# findings
+# --------------------------------------------------------------------------------------------
+
+
+def _list_by_key(long: pd.DataFrame, group: str, item: str) -> pd.Series:
+    """'item (sources: a, b), item2 (sources: c)' per group value."""
+    per_item = (
+        long.groupby([group, item], sort=True)["source"]
+        .agg(lambda x: ", ".join(sorted(set(map(str, x)))))
+        .reset_index()
+    )
+    per_item["text"] = per_item[item].astype(str) + " (" + per_item["source"] + ")"
+    return per_item.groupby(group)["text"].agg(", ".join)
+
+
+def _aligned(values: pd.Series, index: pd.Index, label: str) -> pd.Series:
+    """``values`` as an object Series on ``index``; refuses a Series that does not align."""
+    if not isinstance(values, pd.Series):
+        values = pd.Series(list(values), index=index)
+    if not values.index.equals(index):
+        if (
+            len(values) == len(index)
+            and values.index.is_unique
+            and index.is_unique
+            and values.index.isin(index).all()
+        ):
+            values = values.reindex(index)
+        else:
+            raise ValueError(
+                f"{label} must be aligned with the resolved frame's index "
+                f"({len(index)} rows, first labels {list(index[:3])}); got {len(values)} rows, "
+                f"first labels {list(values.index[:3])}"
+            )
+    return pd.Series(values.to_numpy(dtype=object), index=index)
+
+
+def identity_findings(
+    resolved: pd.DataFrame, source_id: pd.Series, value_id: pd.Series
+) -> pd.DataFrame:
+    """Identity checks over resolved rows, collected into one findings table.
+
+    Rules (severity in :data:`FINDING_RULES`):
+
+    - ``cas_check_digit``: the given CAS fails the format or check-digit rule [1]_.
+    - ``cas_structure_conflict``: one valid CAS stands for different parent InChIKeys across
+      rows and sources, the database's structure for that CAS counting as one more voice.
+      Every row of such a CAS is reported.
+    - ``name_structure_mismatch``: the row's name resolves (steward synonyms or database) to
+      a parent other than the one of its given SMILES/InChI.
+    - ``structure_multiple_cas``: one parent InChIKey is given under several distinct valid
+      CAS numbers (often salt or hydrate numbers; information only).
+    - ``unresolved_identity``: no structure could be found for the row.
+
+    Parameters
+    ----------
+    resolved : pandas.DataFrame
+        Output of :func:`resolve_identities`.
+    source_id, value_id : pandas.Series
+        Source and value id per row, aligned with ``resolved``'s index.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Columns ``rule``, ``severity``, ``value_id``, ``message``; rules in the order of
+        :data:`FINDING_RULES`, rows in input order within a rule.
+
+    References
+    ----------
+    .. [1] CAS. Check Digit Verification of CAS Registry Numbers,
+           https://www.cas.org/support/documentation/chemical-substances/checkdig
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> rows = pd.DataFrame({"name": ["water"], "cas": ["7732-18-6"], "smiles": ["O"], "inchi": [None]})
+    >>> f = identity_findings(resolve_identities(rows), pd.Series(["src-a"]), pd.Series(["v1"]))
+    >>> f["rule"].tolist()
+    ['cas_check_digit']
+    """
+    index = resolved.index
+    src = _aligned(source_id, index, "source_id")
+    vid = _aligned(value_id, index, "value_id")
+    key = resolved["inchikey"]
+    cas_given = _clean_text(resolved["cas_given"])
+    valid = resolved["cas_valid"].astype("boolean")
+    is_valid = valid.fillna(False).to_numpy(dtype=bool)
+    frames: list[pd.DataFrame] = []
+
+    def add(rule: str, mask: pd.Series | np.ndarray, message: pd.Series) -> None:
+        m = np.asarray(mask, dtype=bool)
+        if m.any():
+            frames.append(
+                pd.DataFrame(
+                    {
+                        "rule": rule,
+                        "severity": FINDING_RULES[rule],
+                        "value_id": vid[m].to_numpy(),
+                        "message": message[m].astype(str).to_numpy(),
+                    }
+                )
+            )
+
+    # cas_check_digit
+    bad = valid.fillna(True).eq(False).to_numpy(dtype=bool)
+    if bad.any():
+        _, _, formed, expected, _ = _cas_analysis(cas_given)
+        last = cas_given.str[-1]
+        msg = pd.Series(
+            np.where(
+                formed,
+                "CAS "
+                + _quote(cas_given)
+                + " fails the check-digit rule (check digit "
+                + last.astype("string")
+                + ", expected "
+                + pd.Series(expected, index=index).astype(str)
+                + ")",
+                "CAS " + _quote(cas_given) + " is not a CAS Registry Number (form: 2-7 digits, "
+                "2 digits, 1 check digit, hyphen separated, e.g. 64-19-7)",
+            ),
+            index=index,
+        )
+        add("cas_check_digit", bad, msg)
+
+    # cas_structure_conflict
+    use = is_valid & key.notna().to_numpy()
+    if use.any():
+        rows_long = pd.DataFrame({"cas": cas_given[use], "key": key[use], "source": src[use]})
+        db = resolved.loc[use, ["cas_inchikey"]].assign(cas=cas_given[use])
+        db = db[db["cas_inchikey"].notna()].drop_duplicates("cas")
+        db_long = pd.DataFrame({"cas": db["cas"], "key": db["cas_inchikey"], "source": "database"})
+        long = pd.concat([rows_long, db_long], ignore_index=True)
+        n_keys = long.groupby("cas")["key"].nunique()
+        conflicted = n_keys[n_keys > 1]
+        if len(conflicted):
+            listing = _list_by_key(long[long["cas"].isin(conflicted.index)], "cas", "key")
+            mask = use & cas_given.isin(conflicted.index).fillna(False).to_numpy(dtype=bool)
+            msg = (
+                "CAS "
+                + cas_given
+                + " stands for "
+                + cas_given.map(conflicted).astype("Int64").astype(str)
+                + " different structures: "
+                + cas_given.map(listing)
+                + "; this row has "
+                + key.astype(str)
+            )
+            add("cas_structure_conflict", mask, msg)
+
+    # name_structure_mismatch
+    structural = resolved["resolved_by"].isin(["smiles", "inchi"])
+    nk = resolved["name_inchikey"]
+    mism = structural & nk.notna() & key.notna() & (nk != key)
+    if mism.any():
+        msg = (
+            "name "
+            + _quote(_clean_text(resolved["name"]))
+            + " resolves to "
+            + nk.astype(str)
+            + " but the given structure is "
+            + key.astype(str)
+            + " ("
+            + resolved["smiles"].astype(str)
+            + ")"
+        )
+        add("name_structure_mismatch", mism, msg)
+
+    # structure_multiple_cas
+    if use.any():
+        rows_long = pd.DataFrame({"key": key[use], "cas": cas_given[use], "source": src[use]})
+        n_cas = rows_long.groupby("key")["cas"].nunique()
+        multi = n_cas[n_cas > 1]
+        if len(multi):
+            listing = _list_by_key(rows_long[rows_long["key"].isin(multi.index)], "key", "cas")
+            mask = use & key.isin(multi.index).to_numpy(dtype=bool)
+            msg = (
+                "structure "
+                + key.astype(str)
+                + " is given under "
+                + key.map(multi).astype("Int64").astype(str)
+                + " CAS numbers: "
+                + key.map(listing)
+            )
+            add("structure_multiple_cas", mask, msg)
+
+    # unresolved_identity
+    unres = key.isna()
+    if unres.any():
+        what = (
+            resolved["compound_id"]
+            .astype(object)
+            .where(resolved["compound_id"].notna(), "(nothing given)")
+        )
+        why = _clean_text(resolved["error"]).str.replace("no structure found: ", "", regex=False)
+        msg = ("no structure for " + what.astype(str) + ": " + why).fillna(
+            "no structure for " + what.astype(str)
+        )
+        add("unresolved_identity", unres, msg)
+
+    if not frames:
+        return pd.DataFrame(
+            {c: pd.Series(dtype="object") for c in ("rule", "severity", "value_id", "message")}
+        )
+    return pd.concat(frames, ignore_index=True)
+
+
+# --------------------------------------------------------------------------------------------
+# dissociation step numbers
+# --------------------------------------------------------------------------------------------
+
+
+def infer_steps(frame: pd.DataFrame) -> pd.DataFrame:
+    """Fill missing dissociation-step numbers where the data leave no doubt.
+
+    Step 1 is the loss of the first proton from the most protonated form, so within one
+    source, compound and condition pKa1 < pKa2 < ... (common practice; IUPAC numbering of
+    successive constants, from memory). A group is the rows sharing ``source_id``,
+    ``compound_id``, ``temperature_k`` (rounded to 0.01 K) and ``ionic_strength_molal``
+    (rounded to 1e-4 mol/kg); missing condition values form their own group. Rules:
+
+    1. Rows with a step keep it (``step_inferred`` False).
+    2. A group of n rows that all lack a step, whose pKa values are all present and distinct,
+       gets steps 1..n by ascending pKa, provided the compound appears nowhere (any source or
+       condition) with a known step above n or in a group of more than n rows. A lone value
+       becomes step 1 only if the compound has no known step and no wider group anywhere.
+    3. Exception to 2: a lone value whose compound has exactly one distinct known step
+       elsewhere (and no wider group) takes that step (e.g. a source listing only pKa2).
+    4. Anything else (mixed known/missing steps in a group, repeated or missing pKa values,
+       a lone value where the compound has several known steps, a wider group or higher known
+       step elsewhere) stays ``<NA>``, with the reason in ``step_note``.
+
+    Parameters
+    ----------
+    frame : pandas.DataFrame
+        Columns ``compound_id``, ``step`` (Int64, may be NA), ``pka`` [-], ``source_id``,
+        ``temperature_k`` [K], ``ionic_strength_molal`` [mol/kg]; any index.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Same index: ``step`` (Int64, filled where inferred), ``step_inferred`` (bool) and
+        ``step_note`` (None, or why a missing step was left missing).
+
+    References
+    ----------
+    .. [1] IUPAC. Compendium of Chemical Terminology (Gold Book), "stepwise stability
+           constant" / successive acid dissociation constants, https://goldbook.iupac.org/
+           (numbering convention from memory).
+
+    Examples
+    --------
+    Phosphoric acid from one source at 298.15 K without step numbers (pKa values: IUPAC
+    compilations, from memory):
+
+    >>> import pandas as pd
+    >>> f = pd.DataFrame({"compound_id": ["P"] * 3, "step": pd.array([None] * 3, dtype="Int64"),
+    ...                   "pka": [12.35, 2.148, 7.198], "source_id": ["s"] * 3,
+    ...                   "temperature_k": [298.15] * 3, "ionic_strength_molal": [0.0] * 3})
+    >>> infer_steps(f)["step"].tolist()
+    [3, 1, 2]
+    """
+    need = ["compound_id", "step", "pka", "source_id", "temperature_k", "ionic_strength_molal"]
+    missing_cols = [c for c in need if c not in frame.columns]
+    if missing_cols:
+        raise ValueError(f"infer_steps: missing column(s) {missing_cols}; required: {need}")
+    index = frame.index
+    step = pd.array(frame["step"], dtype="Int64")
+    pka = pd.to_numeric(frame["pka"], errors="coerce").to_numpy(dtype=float)
+    work = pd.DataFrame(
+        {
+            "compound_id": frame["compound_id"].astype(object).to_numpy(),
+            "source_id": frame["source_id"].astype(object).to_numpy(),
+            "t": pd.to_numeric(frame["temperature_k"], errors="coerce").round(2).to_numpy(),
+            "i": pd.to_numeric(frame["ionic_strength_molal"], errors="coerce").round(4).to_numpy(),
+            "step": step,
+            "pka": pka,
+        }
+    )
+    work["pos"] = np.arange(len(work))
+    keys = ["source_id", "compound_id", "t", "i"]
+    work["g"] = work.groupby(keys, dropna=False, sort=False).ngroup()
+    gb = work.groupby("g")
+    known = work["step"].notna()
+    n_rows = gb["pos"].transform("size")
+    n_known = known.groupby(work["g"]).transform("sum")
+    n_pka = work["pka"].notna().groupby(work["g"]).transform("sum")
+    dup = work.duplicated(["g", "pka"], keep=False) & work["pka"].notna()
+    any_dup = dup.groupby(work["g"]).transform("any")
+    rank = gb["pka"].rank(method="first")
+
+    steps_known = work.loc[known, ["compound_id", "step"]]
+    per_compound = steps_known.groupby("compound_id", dropna=False)["step"].agg(
+        ["nunique", "max", "min"]
+    )
+    c_id = work["compound_id"]
+    k_n = c_id.map(per_compound["nunique"]).fillna(0).astype(int)
+    k_max = c_id.map(per_compound["max"]).astype("Float64")
+    k_only = c_id.map(per_compound["min"]).astype("Float64")
+
+    # largest group of the same compound anywhere: a bigger group elsewhere means this one
+    # may be a subset of the steps
+    widest = n_rows.groupby(c_id, dropna=False).transform("max")
+    all_missing = n_known == 0
+    clean = all_missing & (n_pka == n_rows) & ~any_dup
+    lone = n_rows == 1
+    covers = (widest <= n_rows) & ((k_n == 0) | (k_max <= n_rows).fillna(True))
+    rule_rank = clean & ~lone & covers
+    rule_lone_free = clean & lone & (k_n == 0) & (widest == 1)
+    rule_lone_known = clean & lone & (k_n == 1) & (widest == 1)
+    inferred = (rule_rank | rule_lone_free | rule_lone_known).to_numpy(dtype=bool)
+
+    value = np.where(
+        rule_lone_known, k_only.fillna(0).to_numpy(dtype=float), rank.fillna(0).to_numpy()
+    )
+    filled = step.copy()
+    filled[inferred] = value[inferred].astype(np.int64)
+
+    missing_step = ~known.to_numpy(dtype=bool)
+    note = np.select(
+        [
+            ~missing_step | inferred,
+            ~all_missing.to_numpy(),
+            work["pka"].isna().to_numpy() | (n_pka != n_rows).to_numpy(),
+            any_dup.to_numpy(),
+            (clean & lone & (k_n > 1)).to_numpy(),
+            (clean & (widest > n_rows)).to_numpy(),
+        ],
+        [
+            None,
+            "other rows of this source, compound and condition carry steps; a partial set is not completed",
+            "a pKa value in this group is missing",
+            "repeated pKa values in this group; their order is ambiguous",
+            "single value without step; the compound has several known steps elsewhere",
+            "another source or condition lists more values for this compound; the group may be a subset",
+        ],
+        default="the compound has a higher known step elsewhere than this group holds; the group may be a subset",
+    )
+    return pd.DataFrame(
+        {
+            "step": pd.Series(filled, index=index, dtype="Int64"),
+            "step_inferred": pd.Series(inferred, index=index, dtype=bool),
+            "step_note": pd.Series(note, index=index, dtype=object),
+        },
+        index=index,
+    )
