@@ -17,7 +17,6 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from pipeline import physchem
 from pipeline.schemas.tables import FINDINGS, SEVERITIES
 
 #: pKa of H3O+ and of H2O on the 55.5 mol/L water convention: values outside are levelled by
@@ -171,7 +170,8 @@ def _step_order(m: pd.DataFrame, config: dict) -> RuleResult:
     group = ["compound_id", "source_id", "t", "i", "ctype"]
     previous = frame.groupby(group)["pka"].shift(1)
     previous_step = frame.groupby(group)["step"].shift(1)
-    bad = previous.notna() & (frame["pka"] <= previous)
+    # equal step numbers are duplicates, not an order problem; compare successive steps only
+    bad = previous.notna() & (previous_step < frame["step"]) & (frame["pka"] <= previous)
     msg = ("pKa" + frame["step"].astype(str) + " = " + _fmt(frame["pka"]) + " is not above pKa"
            + previous_step.astype(str) + " = " + _fmt(previous) + " from the same source")
     return _result(m.loc[frame.index], bad, msg)
@@ -229,7 +229,3 @@ def attach_locations(findings: pd.DataFrame, measurements: pd.DataFrame) -> pd.D
     located = located.reindex(columns=list(FINDINGS.columns))
     return FINDINGS.validate(located.sort_values(["rule", "value_id"], kind="stable").reset_index(drop=True))
 
-
-def pkw_reference(temperature_k: np.ndarray) -> np.ndarray:
-    """pKw used by the rules (IAPWS R11-24 at 0.1 MPa via :func:`physchem.pkw`)."""
-    return physchem.pkw(temperature_k)

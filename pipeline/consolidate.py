@@ -6,7 +6,7 @@
 2. **Status.** A value with an ``error`` finding is ``excluded``; one with a ``warning`` is
    ``flagged`` but used.
 3. **Groups.** Independent, unbounded, aqueous values are grouped by compound, step and
-   conditions (T to 0.1 K, I to 0.001 mol/kg, constant type). Each group gives one
+   conditions (T to 0.01 K, I to 0.001 mol/kg, constant type). Each group gives one
    recommended value: the uncertainty-weighted mean when every member has an uncertainty
    (its uncertainty scaled by the Birge ratio when that exceeds 1), otherwise the median with
    the scaled median absolute deviation; gross outliers (robust z above 3.5) are left out and
@@ -56,7 +56,7 @@ def _group_keys(m: pd.DataFrame) -> pd.DataFrame:
         {
             "compound_id": m["compound_id"],
             "step": m["step"].astype("Int64").fillna(0).astype("int64"),
-            "t": m["temperature_k"].round(1),
+            "t": m["temperature_k"].round(2),
             "i": m["ionic_strength_molal"].round(3),
             "constant_type": m["constant_type"],
         },
@@ -89,7 +89,7 @@ def mark_copies(m: pd.DataFrame, source_kind: pd.Series) -> pd.Series:
 
 
 def _recommendation_ids(keys: pd.DataFrame) -> list[str]:
-    text = (keys["compound_id"] + "|" + keys["step"].astype(str) + "|" + keys["t"].map("{:.1f}".format)
+    text = (keys["compound_id"] + "|" + keys["step"].astype(str) + "|" + keys["t"].map("{:.2f}".format)
             + "|" + keys["i"].map("{:.3f}".format) + "|" + keys["constant_type"])
     return ["kr-" + hashlib.sha256(s.encode()).hexdigest()[:16] for s in text]
 
@@ -179,7 +179,7 @@ def consensus(members: pd.DataFrame) -> tuple[pd.DataFrame, pd.Series]:
             "one measurement only",
             "uncertainties missing: median of " + n.astype(str) + " values",
         ],
-        str(""),
+        "",
     )
     reason = pd.Series(reason, index=out.index).where(
         pd.Series(reason, index=out.index) != "",

@@ -892,6 +892,8 @@ def resolve_identities(
             "cas_given": _none_object(cas_s),
             "name_inchikey": _none_object(name_inchikey),
             "cas_inchikey": _none_object(cas_key),
+            # the species as the row gave it (salt or charged form kept), for CAS comparisons
+            "species_smiles": _none_object(st["input_smiles_canonical"].where(has_struct)),
             "error": _none_object(error),
         },
         index=index,
@@ -1069,21 +1071,30 @@ def identity_findings(
         )
         add("name_structure_mismatch", mism, msg)
 
-    # structure_multiple_cas
-    if use.any():
-        rows_long = pd.DataFrame({"key": key[use], "cas": cas_given[use], "source": src[use]})
+    # structure_multiple_cas: compared on the species as given, so that a salt's own CAS
+    # (sodium acetate 127-09-3) is not taken for a second CAS of the parent acid
+    species = (
+        resolved["species_smiles"]
+        if "species_smiles" in resolved
+        else pd.Series(None, index=resolved.index, dtype=object)
+    )
+    use_species = use & species.notna().to_numpy(dtype=bool)
+    if use_species.any():
+        rows_long = pd.DataFrame(
+            {"key": species[use_species], "cas": cas_given[use_species], "source": src[use_species]}
+        )
         n_cas = rows_long.groupby("key")["cas"].nunique()
         multi = n_cas[n_cas > 1]
         if len(multi):
             listing = _list_by_key(rows_long[rows_long["key"].isin(multi.index)], "key", "cas")
-            mask = use & key.isin(multi.index).to_numpy(dtype=bool)
+            mask = use_species & species.isin(multi.index).to_numpy(dtype=bool)
             msg = (
                 "structure "
-                + key.astype(str)
+                + species.astype(str)
                 + " is given under "
-                + key.map(multi).astype("Int64").astype(str)
+                + species.map(multi).astype("Int64").astype(str)
                 + " CAS numbers: "
-                + key.map(listing)
+                + species.map(listing)
             )
             add("structure_multiple_cas", mask, msg)
 

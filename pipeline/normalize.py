@@ -46,7 +46,7 @@ def make_value_ids(source_id: pd.Series, table_file: pd.Series, source_row: pd.S
     Examples
     --------
     >>> make_value_ids(pd.Series(["demo"]), pd.Series(["t.csv"]), pd.Series([2])).iloc[0]
-    'kv-51a9bd8e07f0d2c1'
+    'kv-2125e212d7f0c450'
     """
     keys = source_id.astype(str) + "\x1f" + table_file.astype(str) + "\x1f" + source_row.astype(str)
     return pd.Series(
@@ -486,6 +486,9 @@ def _measurement_lineage(
         )[base],
         own,
     )
+    columns = ["target_id", "step_no", "operation", "parameters", "inputs"]
+    if not steps:
+        return pd.DataFrame({c: pd.Series(dtype="int64" if c == "step_no" else object) for c in columns})
     lineage = pd.concat(steps, ignore_index=True).sort_values(["target_id", "order"], kind="stable")
     lineage["step_no"] = lineage.groupby("target_id").cumcount() + 1
-    return lineage[["target_id", "step_no", "operation", "parameters", "inputs"]].reset_index(drop=True)
+    return lineage[columns].reset_index(drop=True)

@@ -79,6 +79,7 @@ MEASUREMENTS = pa.DataFrameSchema(
         "status": _text(False, checks=pa.Check.isin(STATUSES)),
     },
     strict=True,
+    coerce=True,
     ordered=True,
     name="measurements",
 )
@@ -92,6 +93,7 @@ REJECTS = pa.DataFrameSchema(
         "reason": _text(False),
     },
     strict=True,
+    coerce=True,
     ordered=True,
     name="rejects",
 )
@@ -107,6 +109,7 @@ FINDINGS = pa.DataFrameSchema(
         "message": _text(False),
     },
     strict=True,
+    coerce=True,
     ordered=True,
     name="findings",
 )
@@ -122,6 +125,7 @@ COMPOUNDS = pa.DataFrameSchema(
         "resolved_by": _text(),
     },
     strict=True,
+    coerce=True,
     ordered=True,
     name="compounds",
 )
@@ -144,6 +148,7 @@ RECOMMENDED = pa.DataFrameSchema(
         "reason": _text(False),
     },
     strict=True,
+    coerce=True,
     ordered=True,
     name="recommended",
 )
@@ -157,6 +162,7 @@ LINEAGE = pa.DataFrameSchema(
         "inputs": _text(False),
     },
     strict=True,
+    coerce=True,
     ordered=True,
     unique=["target_id", "step_no"],
     name="lineage",
