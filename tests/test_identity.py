@@ -522,3 +522,12 @@ def test_empty_input_gives_empty_tables() -> None:
     assert len(resolved) == 0 and "compound_id" in resolved.columns
     f = identity_findings(resolved, pd.Series([], dtype=object), pd.Series([], dtype=object))
     assert list(f.columns) == ["rule", "severity", "value_id", "message"] and f.empty
+
+
+def test_salt_cas_with_salt_structure_is_not_a_second_cas() -> None:
+    # sodium acetate given as its own species (CC(=O)[O-].[Na+], CAS 127-09-3 in the chemicals
+    # database) beside acetic acid (64-19-7): two species, two CAS numbers, no finding
+    f = findings_for(
+        rows(cas=["64-19-7", "127-09-3"], smiles=["CC(=O)O", "CC(=O)[O-].[Na+]"]), ["src-a", "src-b"]
+    )
+    assert "structure_multiple_cas" not in f["rule"].tolist()
