@@ -16,7 +16,7 @@ from pathlib import Path
 
 import pandas as pd
 
-from pipeline import checks, consolidate, identity, ingest, normalize, publish
+from pipeline import checks, consolidate, identity, ingest, normalize, provenance, publish
 from pipeline.descriptor import DescriptorError, discover_sources
 from pipeline.schemas import SCHEMA_VERSION
 
@@ -128,6 +128,12 @@ def build(
             "findings": str(len(cons.findings)),
             "recommended": str(len(cons.recommended)),
         }
+        info.update(provenance.build_manifest(  # input_sha256, stage_counts, library_versions
+            {"sources": sources, "compounds": norm.compounds, "measurements": cons.measurements,
+             "rejects": norm.rejects, "findings": cons.findings, "recommended": cons.recommended,
+             "lineage": cons.lineage},
+            raw_dir, config_path,
+        ))
         build_info = pd.DataFrame({"key": list(info), "value": list(info.values())})
         publish.publish(
             {

@@ -1,4 +1,4 @@
-"""Command line: ``kaledger build | check | trace``; a thin layer over functions tests call."""
+"""Command line: ``kaledger build | check | trace | export | diff``; a thin layer over functions tests call."""
 
 from __future__ import annotations
 
@@ -8,6 +8,8 @@ import sys
 from collections.abc import Sequence
 from pathlib import Path
 
+from pipeline import diff as release_diff
+from pipeline import provenance
 from pipeline.build import DEFAULT_OUT, DEFAULT_RAW, build
 from pipeline.descriptor import DescriptorError
 from pipeline.ingest import IngestError
@@ -48,34 +50,8 @@ def _cmd_check(args: argparse.Namespace) -> int:
 
 
 def trace(db: Path | str, value_id: str) -> dict:
-    """Everything recorded about one published value, oldest step first."""
-    con = open_database(db)
-    try:
-        steps = con.execute(
-            "SELECT step_no, operation, parameters, inputs FROM lineage WHERE target_id = ? ORDER BY step_no",
-            [value_id],
-        ).fetchall()
-        if not steps:
-            raise KeyError(f"value id {value_id!r} is not in {db}")
-        row = con.execute(
-            """SELECT m.source_id, m.source_row, m.value_reported, m.pka, s.file, s.file_sha256,
-                      s.citation, s.license
-               FROM measurements m JOIN sources s USING (source_id) WHERE m.value_id = ?""",
-            [value_id],
-        ).fetchone()
-    finally:
-        con.close()
-    account = {
-        "value_id": value_id,
-        "steps": [
-            {"step": n, "operation": op, "parameters": json.loads(p), "inputs": json.loads(i)}
-            for n, op, p, i in steps
-        ],
-    }
-    if row is not None:
-        keys = ("source_id", "source_row", "value_reported", "pka", "file", "file_sha256", "citation", "license")
-        account["source"] = dict(zip(keys, row, strict=True))
-    return account
+    """Everything recorded about a value id or recommendation id (see :func:`provenance.trace`)."""
+    return provenance.trace(db, value_id)
 
 
 def _cmd_trace(args: argparse.Namespace) -> int:
@@ -83,15 +59,39 @@ def _cmd_trace(args: argparse.Namespace) -> int:
     if args.json:
         print(json.dumps(account, indent=2, ensure_ascii=False))
         return 0
-    print(f"value {account['value_id']}")
-    for step in account["steps"]:
-        params = ", ".join(f"{k}={v}" for k, v in step["parameters"].items() if v is not None)
-        print(f"  {step['step']}. {step['operation']}: {params}")
-    if "source" in account:
-        s = account["source"]
-        print(f"  from {s['file']} row {s['source_row']} (sha256 {s['file_sha256'][:12]}…), "
-              f"cell text {s['value_reported']!r}")
-        print(f"  cite: {s['citation']} [{s['license']}]")
+    print("\n".join(provenance.format_trace(account)))
+    return 0
+
+
+def _cmd_export(args: argparse.Namespace) -> int:
+    if args.prov is None and args.package is None:
+        raise provenance.ExportError("nothing to export: give --prov FILE, --package DIR or both")
+    if args.package is not None:
+        path = provenance.export_package(
+            args.db, args.package, public=not args.internal, exclude_restricted=args.exclude_restricted
+        )
+        print(f"data package: {path}")
+    if args.prov is not None:
+        print(f"PROV-JSON: {provenance.export_prov(args.db, args.prov)}")
+    return 0
+
+
+def _threshold(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"threshold {text!r} is not a number (pK units, >= 0)") from None
+    if not value >= 0:
+        raise argparse.ArgumentTypeError(f"threshold {text!r} must be >= 0 (pK units)")
+    return value
+
+
+def _cmd_diff(args: argparse.Namespace) -> int:
+    report = release_diff.diff(args.old, args.new, args.threshold)
+    if args.json:
+        print(json.dumps(report, indent=2, ensure_ascii=False))
+    else:
+        print("\n".join(release_diff.format_diff(report)))
     return 0
 
 
@@ -108,10 +108,27 @@ def parser() -> argparse.ArgumentParser:
     c.add_argument("--db", type=Path, default=DEFAULT_OUT)
     c.set_defaults(func=_cmd_check)
     t = sub.add_parser("trace", help="show where a published value came from")
-    t.add_argument("value_id")
+    t.add_argument("value_id", help="a value id (kv-…) or a recommendation id (kr-…)")
     t.add_argument("--db", type=Path, default=DEFAULT_OUT)
     t.add_argument("--json", action="store_true")
     t.set_defaults(func=_cmd_trace)
+    e = sub.add_parser("export", help="write W3C PROV-JSON provenance and/or an open data package")
+    e.add_argument("--db", type=Path, default=DEFAULT_OUT)
+    e.add_argument("--prov", type=Path, metavar="FILE", help="PROV-JSON document of the lineage")
+    e.add_argument("--package", type=Path, metavar="DIR",
+                   help="new folder: tables as CSV and Parquet with a Frictionless datapackage.json")
+    e.add_argument("--exclude-restricted", action="store_true",
+                   help="leave sources without an open licence (and their values) out of the package")
+    e.add_argument("--internal", action="store_true",
+                   help="package every source, marked not public (skips the open-licence check)")
+    e.set_defaults(func=_cmd_export)
+    d = sub.add_parser("diff", help="what changed between two published databases")
+    d.add_argument("old", type=Path, help="the earlier database")
+    d.add_argument("new", type=Path, help="the later database")
+    d.add_argument("--threshold", type=_threshold, default=release_diff.DEFAULT_THRESHOLD,
+                   help="pK units a recommended value must move by to be reported as moved (default 0.02)")
+    d.add_argument("--json", action="store_true")
+    d.set_defaults(func=_cmd_diff)
     return p
 
 
@@ -119,7 +136,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     args = parser().parse_args(argv)
     try:
         return int(args.func(args))
-    except (DescriptorError, IngestError, PublishError, FileNotFoundError, KeyError) as exc:
+    except (DescriptorError, IngestError, PublishError, provenance.ExportError, FileNotFoundError,
+            KeyError) as exc:
         message = exc.args[0] if isinstance(exc, KeyError) else str(exc)
         print(f"kaledger: {message}", file=sys.stderr)
         return 2
