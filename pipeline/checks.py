@@ -7,6 +7,28 @@ collects all failures (it never stops at the first), like a lazy validation. Sev
 - ``error``: the value stays in ``measurements`` (status ``excluded``) but not in ``recommended``;
 - ``warning``: the value is used, with the flag (status ``flagged``);
 - ``info``: advice.
+
+Rules over *groups* of values (temperature series, ionic-strength series, independent values at
+the same conditions) use only aqueous, unbounded values inside the physical bounds; they find
+a value that does not fit the others without letting that value hide itself (a median reference,
+or a fit that leaves the tested temperature out).
+
+Not implemented: "Ka and pKa both reported in one row disagree beyond rounding". A row cannot
+carry two values today: the descriptor's ``[columns]`` keys are a closed set with a single
+``value`` (an unknown key stops the build), :func:`pipeline.parse.parse_values` sends a cell
+holding two numbers (``"4.76 (Ka 1.74e-5)"``) to ``rejects``, and ``MEASUREMENTS`` is a strict
+schema, so no optional second-value column can reach this stage. The rule needs a second value
+field in the ingest contract first.
+
+References
+----------
+.. [1] R. T. Birge, "The calculation of errors by the method of least squares",
+       Phys. Rev. 40, 207-227 (1932) (the Birge ratio).
+.. [2] M. G. Cox, "The evaluation of key comparison data", Metrologia 39, 589-595 (2002)
+       (normalized differences from a reference value, chi-squared consistency test).
+.. [3] E. C. W. Clarke and D. N. Glew, "Evaluation of thermodynamic functions from equilibrium
+       constants", Trans. Faraday Soc. 62, 539-547 (1966) (integrated van 't Hoff equation).
+.. [4] C. W. Davies, *Ion Association*, Butterworths, London, 1962, p. 41 (Davies equation).
 """
 
 from __future__ import annotations
@@ -17,6 +39,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
+from pipeline import physchem
 from pipeline.schemas.tables import FINDINGS, SEVERITIES
 
 #: pKa of H3O+ and of H2O on the 55.5 mol/L water convention: values outside are levelled by
@@ -61,8 +84,20 @@ def rule(name: str, severity: str, description: str) -> Callable[[RuleFunction],
     return register
 
 
-def _result(m: pd.DataFrame, mask: pd.Series, message: pd.Series | str) -> RuleResult:
+def _result(
+    m: pd.DataFrame,
+    mask: pd.Series,
+    message: pd.Series | str | Callable[[pd.DataFrame], pd.Series],
+) -> RuleResult:
+    """Value ids under ``mask`` and their messages.
+
+    ``message`` may be a callable ``rows -> Series``; it is then built only for the rows that
+    fail (on a million rows, formatting every row's message would dominate a rule's cost).
+    """
     mask = mask.fillna(False).astype(bool)
+    if callable(message):
+        failing = m.loc[mask[mask].index]
+        return RuleResult(failing["value_id"], pd.Series(message(failing), index=failing.index).astype(str))
     if isinstance(message, str):
         message = pd.Series(message, index=m.index)
     return RuleResult(m.loc[mask, "value_id"], message[mask].astype(str))
@@ -77,7 +112,7 @@ def _physical_bounds(m: pd.DataFrame, config: dict) -> RuleResult:
     low = config.get("physical_low", PKA_PHYSICAL_LOW)
     high = config.get("physical_high", PKA_PHYSICAL_HIGH)
     bad = (m["pka"] < low) | (m["pka"] > high)
-    return _result(m, bad, "pKa " + _fmt(m["pka"]) + f" is outside the physical bounds {low} to {high}")
+    return _result(m, bad, lambda r: "pKa " + _fmt(r["pka"]) + f" is outside the physical bounds {low} to {high}")
 
 
 @rule(
@@ -91,7 +126,7 @@ def _water_range(m: pd.DataFrame, config: dict) -> RuleResult:
     return _result(
         m,
         bad,
-        "pKa " + _fmt(m["pka"]) + " lies outside the range water allows (-1.74 to 15.74); "
+        lambda r: "pKa " + _fmt(r["pka"]) + " lies outside the range water allows (-1.74 to 15.74); "
         "it must be an extrapolated or non-aqueous value",
     )
 
@@ -99,37 +134,43 @@ def _water_range(m: pd.DataFrame, config: dict) -> RuleResult:
 @rule("implausible_precision", "warning", "more decimals or a smaller uncertainty than any method gives")
 def _precision(m: pd.DataFrame, config: dict) -> RuleResult:
     max_decimals = config.get("max_decimals", 4)
-    text = m["value_reported"].astype(str)
-    # digits after the decimal mark of the first number in a pK-type cell
-    decimals = text.str.extract(r"\d[.,](\d+)", expand=False).str.len().fillna(0)
+    # digits after the decimal mark of the first number in a pK-type cell, on distinct texts
+    codes, uniques = pd.factorize(m["value_reported"].astype(str))
+    per_text = pd.Series(uniques).str.extract(r"\d[.,](\d+)", expand=False).str.len().fillna(0).to_numpy()
+    decimals = pd.Series(per_text[codes] if len(uniques) else np.zeros(len(m)), index=m.index)
     pk_type = m["quantity_reported"].isin(["pKa", "pKb", "logK"])
     too_many = pk_type & (decimals > max_decimals)
     too_small = m["pka_uncertainty"].notna() & (m["pka_uncertainty"] < config.get("min_uncertainty", 1e-4))
-    msg = pd.Series("", index=m.index)
-    msg = msg.where(~too_many, "value '" + text + "' has " + decimals.astype(int).astype(str)
-                    + f" decimals; no pKa method resolves more than {max_decimals}")
-    msg = msg.where(~too_small | too_many, "uncertainty " + m["pka_uncertainty"].astype(str)
-                    + " is smaller than any pKa method achieves")
-    return _result(m, too_many | too_small, msg)
+
+    def message(r: pd.DataFrame) -> pd.Series:
+        many = too_many[r.index]
+        return ("value '" + r["value_reported"].astype(str) + "' has " + decimals[r.index].astype(int).astype(str)
+                + f" decimals; no pKa method resolves more than {max_decimals}").where(
+            many, "uncertainty " + r["pka_uncertainty"].astype(str) + " is smaller than any pKa method achieves"
+        )
+
+    return _result(m, too_many | too_small, message)
 
 
 @rule("implausible_uncertainty", "warning", "an uncertainty larger than 1 pK unit says nothing")
 def _large_uncertainty(m: pd.DataFrame, config: dict) -> RuleResult:
     limit = config.get("max_uncertainty", 1.0)
     bad = m["pka_uncertainty"] > limit
-    return _result(m, bad, "uncertainty ± " + _fmt(m["pka_uncertainty"]) + f" pK units exceeds {limit}")
+    return _result(m, bad, lambda r: "uncertainty ± " + _fmt(r["pka_uncertainty"]) + f" pK units exceeds {limit}")
 
 
 @rule("non_aqueous_solvent", "info", "value measured in a mixed or non-aqueous solvent")
 def _non_aqueous(m: pd.DataFrame, config: dict) -> RuleResult:
     bad = m["solvent"] != "water"
-    return _result(m, bad, "solvent is " + m["solvent"].astype(str) + ", not water; kept apart from aqueous values")
+    return _result(
+        m, bad, lambda r: "solvent is " + r["solvent"].astype(str) + ", not water; kept apart from aqueous values"
+    )
 
 
 @rule("bounded_value", "info", "value reported only as a bound or an approximation")
 def _bounded(m: pd.DataFrame, config: dict) -> RuleResult:
     bad = m["qualifier"].notna()
-    return _result(m, bad, "value is reported as '" + m["qualifier"].astype(str) + " " + _fmt(m["pka"])
+    return _result(m, bad, lambda r: "value is reported as '" + r["qualifier"].astype(str) + " " + _fmt(r["pka"])
                    + "'; bounds are kept but not averaged")
 
 
@@ -142,9 +183,12 @@ def _bounded(m: pd.DataFrame, config: dict) -> RuleResult:
 def _conditions(m: pd.DataFrame, config: dict) -> RuleResult:
     t_bad = ~m["temperature_k"].between(273.15, 373.15)
     i_bad = m["ionic_strength_molal"] > config.get("max_ionic_strength", 0.5)
-    msg = ("T = " + _fmt(m["temperature_k"], 2) + " K, I = " + _fmt(m["ionic_strength_molal"])
-           + " mol/kg lie outside the range of the activity and temperature models")
-    return _result(m, t_bad | i_bad, msg)
+    return _result(
+        m,
+        t_bad | i_bad,
+        lambda r: "T = " + _fmt(r["temperature_k"], 2) + " K, I = " + _fmt(r["ionic_strength_molal"])
+        + " mol/kg lie outside the range of the activity and temperature models",
+    )
 
 
 def _condition_key(m: pd.DataFrame) -> pd.DataFrame:
@@ -159,22 +203,32 @@ def _condition_key(m: pd.DataFrame) -> pd.DataFrame:
     )
 
 
+def _group_ids(frame: pd.DataFrame, columns: list[str]) -> np.ndarray:
+    """Integer id per row of the distinct combinations of ``columns`` (one factorization per column)."""
+    return frame.groupby(columns, sort=False, dropna=False).ngroup().to_numpy()
+
+
 @rule("polyprotic_order", "warning", "successive pKa steps of one acid must increase (pKa1 < pKa2 < ...)")
 def _step_order(m: pd.DataFrame, config: dict) -> RuleResult:
-    key = _condition_key(m)
-    key["source_id"] = m["source_id"]
     has_step = m["step"].notna() & m["qualifier"].isna()
-    frame = pd.concat([key, m[["step", "pka"]]], axis=1)[has_step].sort_values(
-        ["compound_id", "source_id", "t", "i", "ctype", "step"]
-    )
-    group = ["compound_id", "source_id", "t", "i", "ctype"]
-    previous = frame.groupby(group)["pka"].shift(1)
-    previous_step = frame.groupby(group)["step"].shift(1)
+    sub = m[has_step]
+    key = _condition_key(sub)
+    key["source_id"] = sub["source_id"]
+    gid = _group_ids(key, ["compound_id", "source_id", "t", "i", "ctype"])
+    step = sub["step"].to_numpy(dtype="int64")
+    pka = sub["pka"].to_numpy(dtype=float)
+    order = np.lexsort((step, gid))  # by group, then step
+    g, st, p = gid[order], step[order], pka[order]
+    same = np.r_[False, g[1:] == g[:-1]]
+    prev_p = np.r_[np.nan, p[:-1]]
+    prev_st = np.r_[0, st[:-1]]
     # equal step numbers are duplicates, not an order problem; compare successive steps only
-    bad = previous.notna() & (previous_step < frame["step"]) & (frame["pka"] <= previous)
-    msg = ("pKa" + frame["step"].astype(str) + " = " + _fmt(frame["pka"]) + " is not above pKa"
-           + previous_step.astype(str) + " = " + _fmt(previous) + " from the same source")
-    return _result(m.loc[frame.index], bad, msg)
+    bad_sorted = same & (prev_st < st) & (p <= prev_p)
+    rows = sub.index[order[bad_sorted]]
+    msg = ("pKa" + pd.Series(st[bad_sorted], index=rows).astype(str) + " = " + _fmt(pd.Series(p[bad_sorted], index=rows))
+           + " is not above pKa" + pd.Series(prev_st[bad_sorted], index=rows).astype(str) + " = "
+           + _fmt(pd.Series(prev_p[bad_sorted], index=rows)) + " from the same source")
+    return RuleResult(m.loc[rows, "value_id"], msg.astype(str))
 
 
 @rule("ka_kb_kw", "warning", "a pKa and a pKb of one conjugate pair at the same conditions must sum to pKw")
@@ -198,6 +252,304 @@ def _ka_kb_kw(m: pd.DataFrame, config: dict) -> RuleResult:
            + " but pKw = " + _fmt(via_base["pkw_used"]) + " at these conditions (IAPWS R11-24); "
            "off by " + _fmt(diff) + ", tolerance " + _fmt(tolerance))
     return _result(m.loc[via_base.index], bad, msg)
+
+
+#: Uncertainty [pK units] assumed for a value reported without one, where a rule must weigh it
+#: (common practice: compiled pKa values given to two or three decimals are good to a few 0.01).
+DEFAULT_UNCERTAINTY = 0.02
+#: |normalized residual| beyond which a value is discordant (common practice, a 3-sigma rule).
+MAX_NORMALIZED_RESIDUAL = 3.0
+#: Birge ratio beyond which a group's values disagree beyond their uncertainties (common
+#: practice; the same limit decides the Doubtful category in consolidation).
+BIRGE_LIMIT = 2.0
+#: Consistency factor of the median of n normal values: its standard error is about
+#: 1.2533 sigma / sqrt(n) (sqrt(pi/2); e.g. Kendall & Stuart, *The Advanced Theory of
+#: Statistics*, vol. 1, from memory).
+MEDIAN_SE_FACTOR = 1.2533
+#: Activity models the ionic-strength rule can use (they need only charges, not species names).
+IONIC_STRENGTH_MODELS = ("davies", "extended_debye_huckel")
+
+
+def reference_key(reference: pd.Series) -> pd.Series:
+    """Primary-reference text reduced for comparison: lower case, runs of other characters to
+    one space; ``None`` where no reference is given. Evaluated on the distinct texts.
+
+    Examples
+    --------
+    >>> reference_key(pd.Series(["Harned & Ehlers 1933, JACS 55, 652", None])).tolist()
+    ['harned ehlers 1933 jacs 55 652', None]
+    """
+    codes, uniques = pd.factorize(reference)
+    reduced = (
+        pd.Series(uniques, dtype=object).astype(str).str.lower()
+        .str.replace(r"[^a-z0-9]+", " ", regex=True).str.strip()
+    )
+    reduced = np.where(reduced.to_numpy(dtype=object) == "", None, reduced.to_numpy(dtype=object))
+    out = np.full(len(reference), None, dtype=object)
+    has = codes >= 0
+    out[has] = reduced[codes[has]]
+    return pd.Series(out, index=reference.index, dtype=object)
+
+
+def _comparable(m: pd.DataFrame) -> pd.Series:
+    """Values a group rule may compare: aqueous, not a bound, inside the physical bounds."""
+    return (m["solvent"] == "water") & m["qualifier"].isna() & m["pka"].between(PKA_PHYSICAL_LOW, PKA_PHYSICAL_HIGH)
+
+
+def _empty(m: pd.DataFrame) -> RuleResult:
+    return RuleResult(m["value_id"].iloc[:0], pd.Series([], dtype=str))
+
+
+def _u_filled(m: pd.DataFrame, config: dict) -> pd.Series:
+    return m["pka_uncertainty"].fillna(config.get("default_uncertainty", DEFAULT_UNCERTAINTY))
+
+
+@rule(
+    "van_t_hoff_outlier",
+    "warning",
+    "a value of a temperature series (>= 4 temperatures) lies off the van 't Hoff curve through the other "
+    "temperatures",
+)
+def _van_t_hoff(m: pd.DataFrame, config: dict) -> RuleResult:
+    """Temperature-series outliers by leave-one-temperature-out van 't Hoff fits.
+
+    A series is one compound, step, ionic strength [mol/kg] and constant type with values at
+    ``min_temperatures`` (default 4) or more temperatures [K] (rounded to 0.1 K) inside
+    273.15-373.15 K. Each temperature is a node: the median of its values (so one wrong value
+    among several at one temperature does not move the curve; that case is
+    ``source_disagreement``'s). For each node the integrated van 't Hoff equation
+    (:func:`pipeline.physchem.fit_van_t_hoff`, ref. [3]) is fitted to the *other* nodes, with
+    the left-out temperature as reference temperature, so the fitted pKa(θ) is the prediction
+    and its variance the covariance's first element. ΔCp° is fitted when five or more nodes
+    remain, else ΔH° is taken as constant (four points do not pin a curvature). The normalized
+    residual is (observed − predicted) / √(u² + u²(predicted) + s²), with u the value's
+    uncertainty (``default_uncertainty`` when missing) and s the residual standard deviation of
+    the fit. A node whose |normalized residual| exceeds ``max_normalized_residual`` (default 3)
+    is set aside (the worst first, then the others are tested again while ``min_temperatures``
+    remain); a value at a set-aside node is flagged when its own |normalized residual| exceeds
+    the limit too. Leaving the tested temperature out keeps an outlier
+    from pulling the curve towards itself and hiding; setting the worst node aside before testing
+    the others again keeps it from bending the curve away from a good end point.
+    """
+    limit = config.get("max_normalized_residual", MAX_NORMALIZED_RESIDUAL)
+    min_t = config.get("min_temperatures", 4)
+    ok = _comparable(m) & m["temperature_k"].between(physchem.T_MIN_K, physchem.T_MAX_K)
+    f = pd.DataFrame(
+        {
+            "compound_id": m["compound_id"],
+            "step": m["step"].fillna(0).astype("int64"),
+            "i": m["ionic_strength_molal"].round(3),
+            "ctype": m["constant_type"],
+            "t": m["temperature_k"].round(1),
+            "pka": m["pka"],
+            "u": _u_filled(m, config),
+        },
+        index=m.index,
+    )[ok]
+    series = ["compound_id", "step", "i", "ctype"]
+    nodes = f.groupby(series + ["t"], sort=True).agg(pka=("pka", "median"), u=("u", "median")).reset_index()
+    nodes = nodes[nodes.groupby(series)["t"].transform("size") >= min_t].reset_index(drop=True)
+    if nodes.empty:
+        return _empty(m)
+    t_all, p_all, u_all = (nodes[c].to_numpy(dtype=float) for c in ("t", "pka", "u"))
+    predicted = np.full(len(nodes), np.nan)
+    spread = np.full(len(nodes), np.nan)  # u²(predicted) + s² [pK units²]
+    n_fit = np.zeros(len(nodes), dtype=int)
+    z_node = np.zeros(len(nodes))
+    set_aside = np.zeros(len(nodes), dtype=bool)
+
+    def leave_one_out(active: np.ndarray) -> None:
+        for k in active:
+            others = active[active != k]
+            with_cp = len(others) >= 5
+            fit = physchem.fit_van_t_hoff(t_all[others], p_all[others], with_heat_capacity=with_cp,
+                                          t_ref_k=float(t_all[k]))
+            dof = len(others) - (3 if with_cp else 2)
+            predicted[k] = fit.pka_ref
+            spread[k] = float(fit.covariance[0, 0]) + float(np.sum(fit.residuals**2)) / dof
+            n_fit[k] = len(others)
+        z_node[active] = (p_all[active] - predicted[active]) / np.sqrt(u_all[active] ** 2 + spread[active])
+
+    # one loop over the few series with >= min_t temperatures, one fit per left-out node; the worst
+    # node beyond the limit is set aside and the rest re-tested, so one outlier cannot make a good
+    # end point look bad through a curve bent towards it
+    for idx in nodes.groupby(series, sort=False).indices.values():
+        active = np.asarray(idx)
+        while len(active) >= min_t:
+            leave_one_out(active)
+            worst = active[np.argmax(np.abs(z_node[active]))]
+            if abs(z_node[worst]) <= limit:
+                break
+            set_aside[worst] = True
+            active = active[active != worst]
+    nodes["predicted"] = predicted
+    nodes["spread"] = spread
+    nodes["n_fit"] = n_fit
+    nodes["z_node"] = z_node
+    nodes["set_aside"] = set_aside
+    points = f.reset_index().merge(nodes.drop(columns=["pka", "u"]), on=series + ["t"], how="inner").set_index("index")
+    points["z"] = (points["pka"] - points["predicted"]) / np.sqrt(points["u"] ** 2 + points["spread"])
+    bad = points["set_aside"] & (points["z"].abs() > limit)
+    bad_rows = points[bad]
+    message = (
+        "pKa " + _fmt(bad_rows["pka"]) + " at " + _fmt(m.loc[bad_rows.index, "temperature_k"], 2) + " K is "
+        + (bad_rows["pka"] - bad_rows["predicted"]).map("{:+.3f}".format)
+        + " off the van 't Hoff curve through the other " + bad_rows["n_fit"].astype(str)
+        + " temperatures of the series (predicted " + _fmt(bad_rows["predicted"]) + "; normalized residual "
+        + bad_rows["z"].round(1).astype(str) + f", limit {limit:g}; "
+        + np.where(bad_rows["n_fit"] >= 5, "constant-ΔCp° fit)", "constant-ΔH° fit)")
+    )
+    return RuleResult(m.loc[bad_rows.index, "value_id"], message.astype(str))
+
+
+@rule(
+    "ionic_strength_inconsistent",
+    "warning",
+    "a concentration or mixed constant at I > 0 disagrees with the thermodynamic value of the same "
+    "equilibrium carried to that ionic strength by the activity model",
+)
+def _ionic_strength(m: pd.DataFrame, config: dict) -> RuleResult:
+    """Concentration and mixed constants against the activity model.
+
+    For each concentration or mixed pKa at I > 0 [mol/kg], the thermodynamic pKa of the same
+    compound and step at the same temperature [K] (rounded to 0.1 K; the median when there are
+    several) is converted to the row's constant type at the row's ionic strength with
+    :func:`pipeline.physchem.convert_constant_type` (``activity_model``, default ``"davies"``,
+    ref. [4]), using the row's ``charge`` as the charge of the acid form. The row is flagged when
+    it is off by more than max(``tolerance`` (default 0.05 pK units, common practice for the
+    Davies equation at I <= 0.1 mol/kg), 3 √(u² + u_ref²)).
+
+    Skipped, so never flagged here: rows with no ``charge`` (the activity correction depends on
+    it and guessing it would invent a finding), rows above the model's ionic-strength limit or
+    outside its temperature range (``conditions_outside_model_range`` reports those), and rows
+    with no thermodynamic value of the same equilibrium at the same temperature.
+    """
+    model_key = config.get("activity_model", "davies")
+    if model_key not in IONIC_STRENGTH_MODELS:
+        raise ValueError(
+            f"activity_model {model_key!r} is not usable by ionic_strength_inconsistent; "
+            f"valid choices: {', '.join(IONIC_STRENGTH_MODELS)}"
+        )
+    model = physchem.ACTIVITY_MODELS[model_key]
+    tolerance = config.get("tolerance", 0.05)
+    t_lo, t_hi = model.temperature_range_k
+    f = pd.DataFrame(
+        {
+            "compound_id": m["compound_id"],
+            "step": m["step"].fillna(0).astype("int64"),
+            "t": m["temperature_k"].round(1),
+            "ctype": m["constant_type"],
+            "pka": m["pka"],
+            "u": _u_filled(m, config),
+        },
+        index=m.index,
+    )[_comparable(m) & m["temperature_k"].between(t_lo, t_hi)]
+    key = ["compound_id", "step", "t"]
+    thermo = f[f["ctype"] == "thermodynamic"].groupby(key).agg(ref=("pka", "median"), u_ref=("u", "median"))
+    i = m["ionic_strength_molal"]
+    candidate = (f["ctype"] != "thermodynamic") & (i[f.index] > 0) & (i[f.index] <= model.max_ionic_strength)
+    candidate &= m["charge"][f.index].notna()
+    rows = f[candidate].join(thermo, on=key, how="inner")
+    if rows.empty:
+        return _empty(m)
+    expected = pd.Series(np.nan, index=rows.index)
+    for ctype in rows["ctype"].unique():  # at most two: concentration, mixed
+        sel = rows["ctype"] == ctype
+        conversion = physchem.convert_constant_type(
+            rows.loc[sel, "ref"].to_numpy(), "thermodynamic", str(ctype),
+            i[rows.index[sel]].to_numpy(), m["charge"][rows.index[sel]].astype(float).to_numpy(),
+            rows.loc[sel, "t"].to_numpy(), model=model_key,
+        )
+        expected[sel] = conversion.value
+    diff = rows["pka"] - expected
+    limit = np.maximum(tolerance, 3 * np.sqrt(rows["u"] ** 2 + rows["u_ref"] ** 2))
+    bad = diff.abs() > limit
+    r = rows[bad]
+    message = (
+        r["ctype"] + " pKa " + _fmt(r["pka"]) + " at I = " + _fmt(i[r.index]) + " mol/kg, but the thermodynamic pKa "
+        + _fmt(r["ref"]) + " gives " + _fmt(expected[r.index]) + " there by the "
+        + model_key + " model (z(acid) = " + m["charge"][r.index].astype(str) + ", "
+        + m.loc[r.index, "temperature_k"].round(2).astype(str) + " K); off by "
+        + _fmt(diff[r.index].abs()) + ", tolerance " + _fmt(limit[r.index])
+    )
+    return RuleResult(m.loc[r.index, "value_id"], message.astype(str))
+
+
+@rule(
+    "source_disagreement",
+    "warning",
+    "independent values at the same conditions disagree beyond their uncertainties (normalized residual "
+    "and Birge ratio)",
+)
+def _source_disagreement(m: pd.DataFrame, config: dict) -> RuleResult:
+    """Discordant members of groups of independent values at the same conditions.
+
+    A group is one compound, step, temperature (0.01 K), ionic strength (0.001 mol/kg) and
+    constant type, as in consolidation. Copies (same primary reference and value to 0.001) count
+    once. Each member has its uncertainty u (``default_uncertainty``, 0.02, when missing).
+
+    - Birge ratio R_B = √(χ²/(n − 1)), χ² = Σ (x − x̄_w)²/u², x̄_w the weighted mean (ref. [1]).
+    - Normalized residual of a member against a robust reference (ref. [2]): the group median
+      for n >= 3 (standard uncertainty 1.2533 · median(u)/√n), the other value for n = 2:
+      z = (x − x_ref)/√(u² + u_ref²). The median is not pulled by the outlier, so the outlier
+      cannot hide itself and does not drag the good values out with it.
+
+    A member is flagged when R_B > ``birge_limit`` (default 2) and |z| >
+    ``max_normalized_residual`` (default 3). In a discordant pair both members are flagged:
+    two values cannot say which is right.
+    """
+    z_limit = config.get("max_normalized_residual", MAX_NORMALIZED_RESIDUAL)
+    birge_limit = config.get("birge_limit", BIRGE_LIMIT)
+    f = pd.DataFrame(
+        {
+            "compound_id": m["compound_id"],
+            "step": m["step"].fillna(0).astype("int64"),
+            "t": m["temperature_k"].round(2),
+            "i": m["ionic_strength_molal"].round(3),
+            "ctype": m["constant_type"],
+            "pka": m["pka"],
+            "u": _u_filled(m, config).clip(lower=1e-6),
+            "ref": reference_key(m["reference"]),
+            "p3": m["pka"].round(3),
+        },
+        index=m.index,
+    )[_comparable(m)]
+    group = ["compound_id", "step", "t", "i", "ctype"]
+    f["gid"] = _group_ids(f, group)
+    copies = f["ref"].notna() & f.duplicated(["gid", "ref", "p3"])
+    f = f[~copies]
+    size = np.bincount(f["gid"].to_numpy())
+    f = f[size[f["gid"].to_numpy()] >= 2]
+    if f.empty:
+        return _empty(m)
+    gid = pd.factorize(f["gid"])[0]  # dense again after the filter
+
+    def per_group_sum(x: pd.Series | np.ndarray) -> pd.Series:
+        return pd.Series(np.bincount(gid, weights=np.asarray(x, dtype=float))[gid], index=f.index)
+
+    x, u = f["pka"], f["u"]
+    n = per_group_sum(np.ones(len(f)))
+    w = 1.0 / u**2
+    wmean = per_group_sum(w * x) / per_group_sum(w)
+    birge = np.sqrt(per_group_sum(w * (x - wmean) ** 2) / (n - 1))
+    grouped = f.groupby(gid, sort=False)
+    pair = n == 2
+    x_ref = np.where(pair, per_group_sum(x) - x, grouped["pka"].transform("median"))
+    u_ref = np.where(pair, np.sqrt((per_group_sum(u**2) - u**2).clip(lower=0)),
+                     MEDIAN_SE_FACTOR * grouped["u"].transform("median") / np.sqrt(n))
+    z = (x - x_ref) / np.sqrt(u**2 + u_ref**2)
+    bad = (birge > birge_limit) & (z.abs() > z_limit)
+    r = f[bad]
+    message = (
+        "pKa " + _fmt(r["pka"]) + " ± " + _fmt(r["u"])
+        + np.where(m.loc[r.index, "pka_uncertainty"].isna(), " (uncertainty assumed)", "")
+        + " disagrees with the " + np.where(
+            pair[bad], "other value ", "median of the " + n[bad].astype(int).astype(str) + " independent values "
+        ) + pd.Series(x_ref, index=f.index)[bad].round(3).astype(str) + " at the same conditions: normalized residual "
+        + z[bad].round(1).astype(str) + f" (limit {z_limit:g}), Birge ratio " + birge[bad].round(2).astype(str)
+        + f" (limit {birge_limit:g})"
+    )
+    return RuleResult(m.loc[r.index, "value_id"], message.astype(str))
 
 
 def run_rules(measurements: pd.DataFrame, config: dict | None = None) -> pd.DataFrame:
