@@ -31,7 +31,22 @@ def _cmd_build(args: argparse.Namespace) -> int:
     return 0
 
 
+def _cmd_check_fitness(args: argparse.Namespace) -> int:
+    from pipeline.fitness import run_fitness
+
+    report = run_fitness(args.db)
+    print("\n".join(report.lines()))
+    if not report.ok:
+        names = ", ".join(r.case.key for r in report.failures)
+        print(f"fitness-for-use failed ({names}): the release is not fit to publish", file=sys.stderr)
+        return 1
+    print("all fitness-for-use cases pass")
+    return 0
+
+
 def _cmd_check(args: argparse.Namespace) -> int:
+    if getattr(args, "fitness", False):
+        return _cmd_check_fitness(args)
     con = open_database(args.db)
     try:
         rows = con.execute(
@@ -46,6 +61,39 @@ def _cmd_check(args: argparse.Namespace) -> int:
         print(f"{errors} error finding(s): the release is not fit to publish", file=sys.stderr)
         return 1
     print("no error findings")
+    return 0
+
+
+def _cmd_lookup(args: argparse.Namespace) -> int:
+    from pipeline.library import ConditionsOutOfRangeError, Library, LibraryLookupError
+
+    i_text = args.ionic_strength
+    ctype = args.constant_type
+    try:
+        lib = Library.shared(args.db)  # kept open for further lookups in this process
+        compound = lib.find(args.name)
+        if ctype is None:  # a value "at I" means the concentration constant at that I
+            from pipeline.library import _parse_ionic_strength
+
+            ctype = "concentration" if _parse_ionic_strength(i_text) > 0 else "thermodynamic"
+        if args.step is None:
+            results = lib.pkas(compound, args.temperature, i_text, ctype)
+        else:
+            results = [lib.pka(compound, args.step, args.temperature, i_text, ctype)]
+    except (LibraryLookupError, ConditionsOutOfRangeError, ValueError) as exc:
+        print(f"kaledger lookup: {exc}", file=sys.stderr)
+        return 2
+    if args.json:
+        print(json.dumps([r.to_dict() for r in results], indent=2, ensure_ascii=False))
+        return 0
+    first = results[0]
+    print(f"{compound.name} ({compound.compound_id}{', CAS ' + compound.cas if compound.cas else ''})")
+    print(f"{ctype} pKa at {first.temperature_k:.2f} K, I = {first.ionic_strength_molal:g} mol/kg")
+    print(f"{'step':>4}  {'pKa':>8}  {'u(pKa)':>7}  {'category':11}  values")
+    for r in results:
+        mark = " (extrapolated)" if r.extrapolated else ""
+        print(f"{r.step:>4}  {r.pka:8.4f}  {r.uncertainty:7.4f}  {r.category:11}  {', '.join(r.value_ids)}")
+        print(f"{'':>4}  model: {r.model}{mark}")
     return 0
 
 
@@ -106,7 +154,20 @@ def parser() -> argparse.ArgumentParser:
     b.set_defaults(func=_cmd_build)
     c = sub.add_parser("check", help="exit non-zero if the database holds error findings")
     c.add_argument("--db", type=Path, default=DEFAULT_OUT)
+    c.add_argument("--fitness", action="store_true",
+                   help="instead, recompute the reference pH solutions (IUPAC buffer standards) "
+                   "from the library and exit 1 when one drifts beyond its tolerance")
     c.set_defaults(func=_cmd_check)
+    lk = sub.add_parser("lookup", help="pKa of a compound at given conditions, with uncertainty and source")
+    lk.add_argument("name", help="name, CAS, SMILES or InChIKey")
+    lk.add_argument("--temperature", default="25 °C", help="with a unit, e.g. 37C or 310.15 K (default 25 °C)")
+    lk.add_argument("--ionic-strength", default="0", help="mol/kg (default 0)")
+    lk.add_argument("--step", type=int, default=None, help="dissociation step (default: every step)")
+    lk.add_argument("--constant-type", choices=("thermodynamic", "concentration", "mixed"), default=None,
+                    help="default: concentration when --ionic-strength > 0, else thermodynamic")
+    lk.add_argument("--db", type=Path, default=DEFAULT_OUT)
+    lk.add_argument("--json", action="store_true")
+    lk.set_defaults(func=_cmd_lookup)
     t = sub.add_parser("trace", help="show where a published value came from")
     t.add_argument("value_id", help="a value id (kv-…) or a recommendation id (kr-…)")
     t.add_argument("--db", type=Path, default=DEFAULT_OUT)
