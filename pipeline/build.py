@@ -8,13 +8,25 @@ assembles ``sources`` and ``build_info``.
 from __future__ import annotations
 
 import json
+import logging
 import tomllib
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from importlib.metadata import PackageNotFoundError, version
 from pathlib import Path
+from time import perf_counter
+from types import TracebackType
 
 import pandas as pd
+from rich.progress import (
+    BarColumn,
+    MofNCompleteColumn,
+    Progress,
+    SpinnerColumn,
+    TaskID,
+    TextColumn,
+    TimeElapsedColumn,
+)
 
 from pipeline import checks, consolidate, identity, ingest, normalize, provenance, publish
 from pipeline.descriptor import DescriptorError, discover_sources
@@ -23,6 +35,63 @@ from pipeline.schemas import SCHEMA_VERSION
 SYNONYMS_FILE = "synonyms.csv"
 DEFAULT_RAW = Path("raw")
 DEFAULT_OUT = Path("build/kaledger.duckdb")
+STAGES = ("ingest", "normalize", "validate", "consolidate", "publish")
+
+log = logging.getLogger(__name__)
+
+
+class StageProgress:
+    """Progress over the build's stages: log records always, a rich bar when ``enabled``.
+
+    ``begin(stage)`` ends the stage before it (logging its time) and starts the next; leaving
+    the ``with`` block ends the last one. The bar is transient (it is cleared when the build
+    ends) and refreshes on its own, so a long stage shows a running clock.
+    """
+
+    def __init__(self, enabled: bool = False) -> None:
+        self._progress: Progress | None = None
+        self._task: TaskID | None = None
+        self._current: str | None = None
+        self._t0 = 0.0
+        if enabled:
+            self._progress = Progress(
+                SpinnerColumn(), TextColumn("{task.description:<12}"), BarColumn(),
+                MofNCompleteColumn(), TimeElapsedColumn(), transient=True,
+            )
+            self._task = self._progress.add_task("build", total=len(STAGES))
+
+    def __enter__(self) -> StageProgress:
+        if self._progress is not None:
+            self._progress.start()
+        return self
+
+    def __exit__(
+        self, exc_type: type[BaseException] | None, exc: BaseException | None, tb: TracebackType | None
+    ) -> None:
+        if exc_type is None:
+            self._end()
+        elif self._current is not None:
+            log.info("%s failed after %.2f s", self._current, perf_counter() - self._t0)
+        if self._progress is not None:
+            self._progress.stop()
+
+    def _end(self) -> None:
+        if self._current is None:
+            return
+        log.info("%s done in %.2f s", self._current, perf_counter() - self._t0)
+        if self._progress is not None and self._task is not None:
+            self._progress.advance(self._task)
+        self._current = None
+
+    def begin(self, stage: str) -> None:
+        """End the running stage and start ``stage`` (one of :data:`STAGES`)."""
+        if stage not in STAGES:
+            raise ValueError(f"unknown stage {stage!r}; stages: {', '.join(STAGES)}")
+        self._end()
+        self._current, self._t0 = stage, perf_counter()
+        log.info("%s started", stage)
+        if self._progress is not None and self._task is not None:
+            self._progress.update(self._task, description=stage)
 
 
 @dataclass
@@ -94,18 +163,27 @@ def build(
     raw_dir: Path | str = DEFAULT_RAW,
     out_path: Path | str = DEFAULT_OUT,
     config_path: Path | str | None = None,
+    progress: bool = False,
 ) -> BuildSummary:
-    """Run every stage on ``raw_dir`` and publish the database to ``out_path``."""
+    """Run every stage on ``raw_dir`` and publish the database to ``out_path``.
+
+    ``progress`` shows a rich progress bar over the stages (the CLI turns it on only when
+    stdout is a terminal and ``--quiet`` is not given); stage times are logged either way.
+    """
     raw_dir, out_path = Path(raw_dir), Path(out_path)
     config = load_config(Path(config_path) if config_path else None)
     started = datetime.now(UTC)
     descriptors = discover_sources(raw_dir)
-    with publish.build_lock(out_path):
+    with publish.build_lock(out_path), StageProgress(progress) as stages:
+        stages.begin("ingest")
         read = ingest.ingest(descriptors)
+        stages.begin("normalize")
         cache = identity.IdentityCache(out_path.parent / "cache" / "identity.parquet")
         norm = normalize.normalize(read.raw_cells, read.tables, load_synonyms(raw_dir), cache)
+        stages.begin("validate")
         rule_findings = checks.run_rules(norm.measurements, config.get("rules", {}))
         found = pd.concat([rule_findings, norm.identity_findings], ignore_index=True)
+        stages.begin("consolidate")
         cons = consolidate.consolidate(norm.measurements, found, read.source_files, norm.lineage)
 
         counts = cons.measurements.groupby("source_id").size()
@@ -135,6 +213,7 @@ def build(
             raw_dir, config_path,
         ))
         build_info = pd.DataFrame({"key": list(info), "value": list(info.values())})
+        stages.begin("publish")
         publish.publish(
             {
                 "sources": sources,

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import logging
 import sys
 from collections.abc import Sequence
 from pathlib import Path
@@ -23,7 +24,10 @@ CAUTION = (
 
 
 def _cmd_build(args: argparse.Namespace) -> int:
-    summary = build(args.raw, args.out, args.config)
+    if args.verbose:
+        logging.basicConfig(level=logging.INFO, format="%(asctime)s %(name)s: %(message)s")
+    show_progress = not args.quiet and sys.stdout.isatty()
+    summary = build(args.raw, args.out, args.config, progress=show_progress)
     if not args.quiet:
         print("\n".join(summary.lines()))
         print()
@@ -143,6 +147,15 @@ def _cmd_diff(args: argparse.Namespace) -> int:
     return 0
 
 
+def _cmd_report(args: argparse.Namespace) -> int:
+    from pipeline.report import render  # matplotlib is imported only for this command
+
+    index = render(args.db, args.out)
+    print(f"report written to {index}")
+    print(f"open {index.resolve().as_uri()} in a browser (works offline)")
+    return 0
+
+
 def parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="kaledger", description="pKa/Ka reference-data curation pipeline")
     sub = p.add_subparsers(dest="command", required=True)
@@ -151,7 +164,12 @@ def parser() -> argparse.ArgumentParser:
     b.add_argument("--out", type=Path, default=DEFAULT_OUT, help="database file (default build/kaledger.duckdb)")
     b.add_argument("--config", type=Path, default=Path("kaledger.toml"), help="project config (rule settings)")
     b.add_argument("--quiet", action="store_true", help="print nothing on success")
+    b.add_argument("--verbose", "-v", action="store_true", help="log each stage and its time to stderr")
     b.set_defaults(func=_cmd_build)
+    r = sub.add_parser("report", help="write a static HTML validation report of the database")
+    r.add_argument("--db", type=Path, default=DEFAULT_OUT, help="database file (default build/kaledger.duckdb)")
+    r.add_argument("--out", type=Path, default=Path("build/report"), help="report folder (default build/report/)")
+    r.set_defaults(func=_cmd_report)
     c = sub.add_parser("check", help="exit non-zero if the database holds error findings")
     c.add_argument("--db", type=Path, default=DEFAULT_OUT)
     c.add_argument("--fitness", action="store_true",
