@@ -51,7 +51,8 @@ SOURCE_KIND_RANK = {"experimental": 0, "critical_review": 1, "compilation": 2, "
 MAD_TO_SIGMA = 1.4826  # consistency factor of the MAD for normal data, ref. [2]
 OUTLIER_Z = 3.5  # robust z beyond which a member is an outlier (common practice)
 BIRGE_DISCORDANT = 2.0  # Birge ratio above which the members disagree (common practice)
-DEFAULT_SPREAD = 0.02  # pK units assumed when a group's values are identical (from memory)
+DEFAULT_SPREAD = 0.02  # customary reproducibility of a pKa [pK units] (common practice)
+MEDIAN_EFFICIENCY = 1.2533  # sqrt(pi/2): standard error of the median over that of the mean
 
 
 @dataclass(frozen=True)
@@ -161,7 +162,20 @@ def consensus(members: pd.DataFrame) -> tuple[pd.DataFrame, pd.Series]:
     birge = np.sqrt(chi2 / (n - 1)).where(out["all_u"] & (n > 1))
     internal_u = 1.0 / np.sqrt(out["sum_w"])
     kept_mad = (kept["pka"] - kept["group"].map(out["median"])).abs().groupby(kept["group"], sort=False).median()
-    robust_u = np.maximum(MAD_TO_SIGMA * kept_mad, (out["max"] - out["min"]) / 2) / np.sqrt(n)
+    # the median's standard uncertainty is sqrt(pi/2)·sigma/sqrt(n) for normal data; it is never
+    # taken below what the members state themselves (their combined uncertainty) nor below the
+    # customary pKa reproducibility over sqrt(n), so identical values do not give u = 0
+    stated_u = 1.0 / np.sqrt(out["sum_w"].where(out["sum_w"] > 0))
+    robust_u = np.fmax(
+        np.maximum.reduce(
+            [
+                MEDIAN_EFFICIENCY * MAD_TO_SIGMA * kept_mad / np.sqrt(n),
+                (out["max"] - out["min"]) / (2 * np.sqrt(n)),
+                DEFAULT_SPREAD / np.sqrt(n),
+            ]
+        ),
+        stated_u,
+    )
 
     single = n == 1
     use_weighted = ~single & out["all_u"]

@@ -38,7 +38,7 @@ def test_windows_1252_and_bom(raw_dir: Path) -> None:
     (folder / "data.csv").write_bytes("Compound,Value\ncafé acid,4.5\n".encode("cp1252"))
     assert _ingest(folder).raw_cells["name"].tolist() == ["café acid"]
     folder2 = write_source(raw_dir, "t2", "")
-    (folder2 / "data.csv").write_bytes(b"\xef\xbb\xbf" + "Compound,Value\nacetic acid,4.756\n".encode())
+    (folder2 / "data.csv").write_bytes(b"\xef\xbb\xbf" + b"Compound,Value\nacetic acid,4.756\n")
     assert _ingest(folder2).raw_cells["value"].tolist() == ["4.756"]
 
 
