@@ -9,6 +9,8 @@ import sys
 from collections.abc import Sequence
 from pathlib import Path
 
+import pandas as pd
+
 from pipeline import diff as release_diff
 from pipeline import provenance
 from pipeline.build import DEFAULT_OUT, DEFAULT_RAW, build
@@ -48,19 +50,38 @@ def _cmd_check_fitness(args: argparse.Namespace) -> int:
     return 0
 
 
+def recheck(db: Path | str, config_path: Path | str | None = None) -> pd.DataFrame:
+    """Run the chemistry rules again on a built database; return every finding.
+
+    The registered rules (``pipeline.checks.RULES``) run on the published measurements with
+    the settings of ``config_path``; findings of the other stages (identity, consensus) are
+    taken as stored, since they need the build's inputs.
+    """
+    from pipeline.build import load_config
+    from pipeline.checks import RULES, run_rules
+    from pipeline.schemas.tables import FINDINGS, MEASUREMENTS
+
+    con = open_database(db)
+    try:
+        measurements = con.execute("SELECT * FROM measurements ORDER BY value_id").df()
+        stored = con.execute("SELECT * FROM findings").df()
+    finally:
+        con.close()
+    config = load_config(Path(config_path) if config_path else None)
+    measurements = MEASUREMENTS.validate(measurements[list(MEASUREMENTS.columns)])
+    fresh = run_rules(measurements, config.get("rules", {}))
+    other = stored[~stored["rule"].isin(list(RULES))]
+    return FINDINGS.validate(pd.concat([fresh, other], ignore_index=True))
+
+
 def _cmd_check(args: argparse.Namespace) -> int:
     if getattr(args, "fitness", False):
         return _cmd_check_fitness(args)
-    con = open_database(args.db)
-    try:
-        rows = con.execute(
-            "SELECT rule, severity, count(*) FROM findings GROUP BY rule, severity ORDER BY severity, rule"
-        ).fetchall()
-    finally:
-        con.close()
-    errors = sum(n for _, sev, n in rows if sev == "error")
-    for rule, severity, n in rows:
+    findings = recheck(args.db, args.config)
+    counts = findings.groupby(["severity", "rule"]).size()
+    for (severity, rule), n in counts.items():
         print(f"{severity:8} {rule:32} {n}")
+    errors = int((findings["severity"] == "error").sum())
     if errors:
         print(f"{errors} error finding(s): the release is not fit to publish", file=sys.stderr)
         return 1
@@ -170,8 +191,9 @@ def parser() -> argparse.ArgumentParser:
     r.add_argument("--db", type=Path, default=DEFAULT_OUT, help="database file (default build/kaledger.duckdb)")
     r.add_argument("--out", type=Path, default=Path("build/report"), help="report folder (default build/report/)")
     r.set_defaults(func=_cmd_report)
-    c = sub.add_parser("check", help="exit non-zero if the database holds error findings")
+    c = sub.add_parser("check", help="run the rules on a built database; exit 1 on error findings")
     c.add_argument("--db", type=Path, default=DEFAULT_OUT)
+    c.add_argument("--config", type=Path, default=Path("kaledger.toml"), help="project config (rule settings)")
     c.add_argument("--fitness", action="store_true",
                    help="instead, recompute the reference pH solutions (IUPAC buffer standards) "
                    "from the library and exit 1 when one drifts beyond its tolerance")

@@ -135,3 +135,12 @@ def test_all_rows_rejected_still_builds(raw_dir: Path, tmp_path: Path) -> None:
     write_source(raw_dir, "t1", "Compound,Value\nacetic acid,n/a\n")
     summary = build(raw_dir, tmp_path / "db.duckdb")
     assert summary.rows_read == 1 and summary.accepted == 0 and summary.rejected_rows == 1
+
+
+def test_check_reruns_rules_with_config(demo_db: Path, tmp_path: Path) -> None:
+    # `kaledger check` runs the rules again on the published measurements: switching the
+    # error rule off in a config clears the gate without a rebuild
+    config = tmp_path / "kaledger.toml"
+    config.write_text("[rules.pka_physical_bounds]\nenabled = false\n", encoding="utf-8")
+    assert main(["check", "--db", str(demo_db), "--config", str(tmp_path / "absent.toml")]) == 1
+    assert main(["check", "--db", str(demo_db), "--config", str(config)]) == 0
