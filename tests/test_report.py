@@ -149,8 +149,9 @@ def test_every_source_appears_with_its_counts(demo: tuple[Path, Path], pages: di
         assert report.anchor("source", source_id) in index.ids
         assert source_id in text
         assert read == accepted + rejected
-    # raw/README.md: 142 data rows, 6 rejected
-    assert "142" in text and "rows read" in text
+    total = sum(r[1] for r in sources)
+    assert total >= 142  # raw/README.md: 142 data rows (at least; the demo may grow)
+    assert re.search(rf"\b{total}\s+rows read", text), "rows-read total missing from the summary"
 
 
 def test_every_fired_rule_appears_and_links_to_its_values(
