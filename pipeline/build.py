@@ -7,8 +7,12 @@ assembles ``sources`` and ``build_info``.
 
 from __future__ import annotations
 
+import hashlib
 import json
 import logging
+import os
+import sys
+import time
 import tomllib
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
@@ -17,6 +21,7 @@ from pathlib import Path
 from time import perf_counter
 from types import TracebackType
 
+import duckdb
 import pandas as pd
 from rich.progress import (
     BarColumn,
@@ -28,7 +33,7 @@ from rich.progress import (
     TimeElapsedColumn,
 )
 
-from pipeline import checks, consolidate, identity, ingest, normalize, provenance, publish
+from pipeline import checks, consolidate, identity, normalize, provenance, publish, stage_cache
 from pipeline.descriptor import DescriptorError, discover_sources
 from pipeline.schemas import SCHEMA_VERSION
 
@@ -105,6 +110,7 @@ class BuildSummary:
     rejects_by_field: pd.DataFrame = field(default_factory=pd.DataFrame)
     compounds: int = 0
     recommended: int = 0
+    up_to_date: bool = False  # nothing changed since the published file was built
 
     def lines(self) -> list[str]:
         """A short human-readable account of the build, stage by stage."""
@@ -114,7 +120,7 @@ class BuildSummary:
             f"{self.compounds} compounds",
             "validate    " + ", ".join(f"{n} {s}" for s, n in self.findings.items()) + " findings",
             f"consolidate {self.recommended} recommended values",
-            f"publish     {self.out_path}",
+            f"publish     {self.out_path}" + (" (up to date: inputs unchanged)" if self.up_to_date else ""),
             "",
             self.per_source.to_string(index=False),
         ]
@@ -159,13 +165,101 @@ def load_synonyms(raw_dir: Path) -> pd.DataFrame | None:
     return frame.replace("", None)
 
 
+#: Environment variable for the reliability tests: the build sleeps at that stage
+#: (one of :data:`STAGES`) after printing "paused at <stage>" to stderr, so a test can kill it there.
+PAUSE_ENV = "KALEDGER_TEST_PAUSE_AT"
+
+
+def _pause_for_test(stage: str) -> None:
+    """Sleep here if ``KALEDGER_TEST_PAUSE_AT`` names ``stage`` (test hook; no effect otherwise)."""
+    if os.environ.get(PAUSE_ENV) == stage:
+        print(f"kaledger: paused at {stage}", file=sys.stderr, flush=True)
+        time.sleep(float(os.environ.get("KALEDGER_TEST_PAUSE_SECONDS", "60")))
+
+
+def _remove_stale_temporaries(out_path: Path) -> None:
+    """Delete temporaries of earlier killed builds (safe: the caller holds the build lock)."""
+    for stale in out_path.parent.glob(f".{out_path.name}.tmp-*"):
+        stale.unlink(missing_ok=True)
+
+
+def _input_fingerprint(keys: dict[str, str], config: dict) -> str:
+    """sha256 of everything a build's output depends on: source keys, config, all code."""
+    root = Path(__file__).resolve().parent
+    digest = hashlib.sha256(json.dumps([sorted(keys.items()), config], sort_keys=True).encode())
+    digest.update(SCHEMA_VERSION.encode() + package_version().encode())
+    for path in sorted([*root.rglob("*.py"), *root.rglob("*.sql"), *root.parent.glob("schemas/*")]):
+        if path.is_file():
+            digest.update(path.name.encode() + path.read_bytes())
+    return digest.hexdigest()
+
+
+def _published_fingerprint(out_path: Path) -> str | None:
+    """The ``input_fingerprint`` of the published file, or None (missing or unreadable)."""
+    if not out_path.is_file():
+        return None
+    try:
+        con = publish.open_database(out_path)
+        try:
+            row = con.execute(
+                "SELECT value FROM build_info WHERE key = 'input_fingerprint'"
+            ).fetchone()
+        finally:
+            con.close()
+    except (duckdb.Error, OSError):
+        return None
+    return None if row is None else str(row[0])
+
+
+def summary_from_database(out_path: Path | str) -> BuildSummary:
+    """The :class:`BuildSummary` of a published database, read back from its tables."""
+    out_path = Path(out_path)
+    con = publish.open_database(out_path)
+    try:
+        per_source = con.execute(
+            """SELECT s.source_id, s.row_count AS rows_read, s.accepted, s.rejected,
+                      (SELECT count(*) FROM findings f WHERE f.source_id = s.source_id) AS findings
+               FROM sources s ORDER BY s.source_id"""
+        ).df()
+        by_field = con.execute(
+            "SELECT source_id, field, count(*) AS cells FROM rejects GROUP BY ALL ORDER BY ALL"
+        ).df()
+        severity = dict(con.execute("SELECT severity, count(*) FROM findings GROUP BY ALL").fetchall())
+        (compounds,) = con.execute("SELECT count(*) FROM compounds").fetchone()
+        (recommended,) = con.execute("SELECT count(*) FROM recommended").fetchone()
+    finally:
+        con.close()
+    return BuildSummary(
+        out_path=out_path,
+        rows_read=int(per_source["rows_read"].sum()),
+        accepted=int(per_source["accepted"].sum()),
+        rejected_rows=int(per_source["rejected"].sum()),
+        findings={s: int(severity.get(s, 0)) for s in ("error", "warning", "info")},
+        per_source=per_source.astype({"findings": int}),
+        rejects_by_field=by_field,
+        compounds=int(compounds),
+        recommended=int(recommended),
+        up_to_date=True,
+    )
+
+
 def build(
     raw_dir: Path | str = DEFAULT_RAW,
     out_path: Path | str = DEFAULT_OUT,
     config_path: Path | str | None = None,
     progress: bool = False,
+    force: bool = False,
+    use_cache: bool = True,
 ) -> BuildSummary:
     """Run every stage on ``raw_dir`` and publish the database to ``out_path``.
+
+    Incremental: a source whose descriptor, data files, the synonyms file and the stage code
+    are unchanged is not read again; its kept ingest/normalize output (``build/cache/sources``
+    beside the output, see :mod:`pipeline.stage_cache`) is reused and the whole-set stages
+    (step inference, rules, consolidation, publish) run on all sources. When nothing at all
+    changed (same inputs, config and code as the published file's ``input_fingerprint``)
+    the published file is left as it is and its summary returned; ``force`` rebuilds anyway,
+    ``use_cache=False`` ignores kept stage output (a clean build).
 
     ``progress`` shows a rich progress bar over the stages (the CLI turns it on only when
     stdout is a terminal and ``--quiet`` is not given); stage times are logged either way.
@@ -175,15 +269,28 @@ def build(
     started = datetime.now(UTC)
     descriptors = discover_sources(raw_dir)
     with publish.build_lock(out_path), StageProgress(progress) as stages:
+        _remove_stale_temporaries(out_path)
+        synonyms_path = raw_dir / SYNONYMS_FILE
+        synonyms_sha = stage_cache.file_sha256(synonyms_path) if synonyms_path.is_file() else None
+        code = stage_cache.code_fingerprint(package_version())
+        keys = {s.id: stage_cache.source_key(s, synonyms_sha, code) for s in descriptors}
+        fingerprint = _input_fingerprint(keys, config)
+        if not force and _published_fingerprint(out_path) == fingerprint:
+            return summary_from_database(out_path)  # nothing changed: the file is up to date
         stages.begin("ingest")
-        read = ingest.ingest(descriptors)
-        stages.begin("normalize")
+        _pause_for_test("ingest")
         cache = identity.IdentityCache(out_path.parent / "cache" / "identity.parquet")
-        norm = normalize.normalize(read.raw_cells, read.tables, load_synonyms(raw_dir), cache)
+        kept = stage_cache.StageCache(out_path.parent / "cache" / "sources") if use_cache else None
+        read, norm = stage_cache.ingest_and_normalize(  # normalize runs inside, per source
+            descriptors, keys, load_synonyms(raw_dir), cache, kept,
+            between=lambda: (stages.begin("normalize"), _pause_for_test("normalize")),
+        )
         stages.begin("validate")
+        _pause_for_test("validate")
         rule_findings = checks.run_rules(norm.measurements, config.get("rules", {}))
         found = pd.concat([rule_findings, norm.identity_findings], ignore_index=True)
         stages.begin("consolidate")
+        _pause_for_test("consolidate")
         cons = consolidate.consolidate(norm.measurements, found, read.source_files, norm.lineage)
 
         counts = cons.measurements.groupby("source_id").size()
@@ -205,6 +312,7 @@ def build(
             "rejected_rows": str(int(sources["rejected"].sum())),
             "findings": str(len(cons.findings)),
             "recommended": str(len(cons.recommended)),
+            "input_fingerprint": fingerprint,
         }
         info.update(provenance.build_manifest(  # input_sha256, stage_counts, library_versions
             {"sources": sources, "compounds": norm.compounds, "measurements": cons.measurements,
@@ -214,6 +322,7 @@ def build(
         ))
         build_info = pd.DataFrame({"key": list(info), "value": list(info.values())})
         stages.begin("publish")
+        _pause_for_test("publish")
         publish.publish(
             {
                 "sources": sources,

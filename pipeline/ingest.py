@@ -11,9 +11,13 @@ from __future__ import annotations
 import csv
 import hashlib
 import io
+import itertools
+import re
+from collections.abc import Iterable
 from dataclasses import dataclass
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 from charset_normalizer import from_bytes
 
@@ -61,35 +65,101 @@ def _decode(data: bytes, encoding: str | None, path: Path) -> tuple[str, str]:
     return data.decode(encoding, errors="replace"), encoding
 
 
-def _read_delimited(text: str, delimiter: str, skip_rows: int) -> tuple[list[str], list[list[str]], list[int]]:
-    """Split delimited text; return header, records and the file line each record starts on."""
-    reader = csv.reader(io.StringIO(text, newline=""), delimiter=delimiter, strict=False)
-    records: list[list[str]] = []
-    starts: list[int] = []
-    header: list[str] | None = None
-    previous_end = 0
-    skipped = 0
-    for record in reader:
-        start = previous_end + 1
-        previous_end = reader.line_num
-        if skipped < skip_rows:
-            skipped += 1
-            continue
-        if header is None:
-            if not any(cell.strip() for cell in record):
-                continue  # blank lines before the header
-            header = [cell.strip() for cell in record]
-            continue
-        if not any(cell.strip() for cell in record):
-            continue  # blank lines are not data rows
-        records.append(record)
-        starts.append(start)
-    if header is None:
-        header = []
-    return header, records, starts
+_LINE_END = re.compile(r"\r\n|\r|\n")  # the line ends the csv module knows
 
 
-def _read_xlsx(path: Path, sheet: str | None, skip_rows: int) -> tuple[list[str], list[list[str]], list[int]]:
+def _split_lines(text: str) -> list[str]:
+    """Physical lines of ``text`` without their ends (a final line end opens no new line)."""
+    lines = _LINE_END.split(text) if "\r" in text else text.split("\n")
+    if lines and lines[-1] == "":
+        lines.pop()
+    return lines
+
+
+def _tokenize(rows: Iterable[str], delimiter: str, path: Path) -> list[list[str]]:
+    try:
+        return list(csv.reader(rows, delimiter=delimiter, strict=False))
+    except csv.Error as exc:  # e.g. a NUL byte beyond the first 4 KiB
+        raise IngestError(f"{path}: cannot be split into {delimiter!r}-separated cells ({exc})") from None
+
+
+def _is_blank(record: list[str]) -> bool:
+    return not any(cell.strip() for cell in record)
+
+
+def _read_delimited(
+    text: str, delimiter: str, skip_rows: int, path: Path = Path("<text>")
+) -> tuple[list[str], list[list[str]], np.ndarray, np.ndarray, int | None]:
+    """Split delimited text; return header, records, the file line each record starts on,
+    for each record an upper bound of its longest cell (characters), and the line of a record
+    whose quoted cell is never closed (it runs to the end of the file), else None.
+
+    Fast path: the text is tokenized line by line by the ``csv`` module in one C call; when
+    that gives exactly one record per physical line (no quoted cell spans a line end) record
+    ``i`` starts on line ``i + 1``. Otherwise the text is read again as one stream and each
+    record's first line is taken from the reader's line counter (same tokenizer, same cells).
+    """
+    lines = _split_lines(text)
+    records = _tokenize(lines, delimiter, path)
+    open_quote: int | None = None  # index of a record whose quoted cell never closes
+    if len(records) == len(lines):
+        starts = np.arange(1, len(records) + 1, dtype=np.int64)
+        sizes = np.fromiter(map(len, lines), dtype=np.int64, count=len(lines))
+        if lines and '"' in lines[-1] and _quote_left_open(lines[-1:], delimiter):
+            open_quote = len(records) - 1
+    else:  # a quoted cell spans lines: number records by the line they start on
+        reader = csv.reader(io.StringIO(text, newline=""), delimiter=delimiter, strict=False)
+        records, first = [], []
+        previous_end = 0
+        try:
+            for record in reader:
+                records.append(record)
+                first.append(previous_end + 1)
+                previous_end = reader.line_num
+        except csv.Error as exc:
+            raise IngestError(
+                f"{path}: cannot be split into {delimiter!r}-separated cells ({exc})"
+            ) from None
+        starts = np.asarray(first, dtype=np.int64)
+        sizes = np.fromiter((max(map(len, r), default=0) for r in records), np.int64, len(records))
+        if records and _quote_left_open(lines[starts[-1] - 1 :], delimiter):
+            open_quote = len(records) - 1
+    # skip_rows counts records above the header, then blank records before it are passed over
+    position = skip_rows
+    while position < len(records) and _is_blank(records[position]):
+        position += 1
+    if position >= len(records):
+        return [], [], np.empty(0, dtype=np.int64), np.empty(0, dtype=np.int64), None
+    header = [cell.strip() for cell in records[position]]
+    data, starts, sizes = records[position + 1 :], starts[position + 1 :], sizes[position + 1 :]
+    open_row = int(starts[open_quote - position - 1]) if open_quote is not None and open_quote > position else None
+    # blank records are not data rows; a blank record has a blank first cell (cheap filter)
+    first_cells = pd.Series([r[0] if r else "" for r in data], dtype=object)
+    maybe_blank = np.flatnonzero((first_cells.str.strip() == "").to_numpy())
+    blank = [i for i in maybe_blank if _is_blank(data[i])]
+    if blank:
+        keep = np.ones(len(data), dtype=bool)
+        keep[blank] = False
+        data = [r for r, k in zip(data, keep, strict=True) if k]
+        starts, sizes = starts[keep], sizes[keep]
+    if open_row is not None and not (len(starts) and starts[-1] == open_row):
+        open_row = None  # the open-quote record was blank (or the header) and is no data row
+    return header, data, starts, sizes, open_row
+
+
+def _quote_left_open(tail: list[str], delimiter: str) -> bool:
+    """Whether the record spanning ``tail`` (its lines to the end of the file) ends inside a
+    quoted cell; the lenient reader accepts that silently, a strict one raises."""
+    try:
+        list(csv.reader(io.StringIO("\n".join(tail), newline=""), delimiter=delimiter, strict=True))
+    except csv.Error as exc:
+        return "unexpected end of data" in str(exc)
+    return False
+
+
+def _read_xlsx(
+    path: Path, sheet: str | None, skip_rows: int
+) -> tuple[list[str], list[list[str]], np.ndarray, np.ndarray]:
     from zipfile import BadZipFile
 
     from openpyxl import load_workbook
@@ -121,7 +191,60 @@ def _read_xlsx(path: Path, sheet: str | None, skip_rows: int) -> tuple[list[str]
             starts.append(number)
     finally:
         book.close()
-    return header or [], records, starts
+    sizes = np.fromiter((max(map(len, r), default=0) for r in records), np.int64, len(records))
+    return header or [], records, np.asarray(starts, dtype=np.int64), sizes
+
+
+def _row_errors(
+    records: list[list[str]], width: int, sizes: np.ndarray, encoding: str | None,
+    replaced: bool,
+) -> np.ndarray:
+    """Why each record cannot be used (None where it can), checked column-wise.
+
+    Trailing empty cells are harmless; missing or extra filled cells are not. Only the few
+    records that can fail a check (wrong length, a long line, a U+FFFD) are looked at one by one.
+    """
+    n = len(records)
+    error = np.full(n, None, dtype=object)
+    if n == 0:
+        return error
+    lengths = np.fromiter(map(len, records), dtype=np.int64, count=n)
+    ragged = lengths < width
+    for i in np.flatnonzero(lengths > width):
+        ragged[i] = any(c.strip() for c in records[i][width:])
+    for i in np.flatnonzero(~ragged & (sizes > MAX_CELL_CHARS)):
+        if any(len(c) > MAX_CELL_CHARS for c in records[i]):
+            error[i] = f"a cell is longer than {MAX_CELL_CHARS} characters"
+    if replaced:  # the decoder put U+FFFD somewhere in the text
+        for i in np.flatnonzero(~ragged & (error == None)):  # noqa: E711 (element-wise)
+            if any("\ufffd" in c for c in records[i]):
+                error[i] = (
+                    f"row holds bytes that are not valid {encoding}; set 'encoding' in [table]"
+                )
+    bad = np.flatnonzero(ragged)
+    error[bad] = [f"row has {lengths[i]} cells but the header has {width}" for i in bad]
+    return error
+
+
+def _columns(records: list[list[str]], wanted: list[int], sizes: np.ndarray) -> dict[int, np.ndarray]:
+    """The cells of columns ``wanted`` (None past a short record's end), cut to
+    :data:`MAX_CELL_CHARS`; one C-level transpose instead of a loop over records."""
+    if not wanted or not records:
+        return {i: np.full(len(records), None, dtype=object) for i in wanted}
+    transposed = itertools.islice(itertools.zip_longest(*records), max(wanted) + 1)
+    out = {
+        i: np.array(column, dtype=object)
+        for i, column in enumerate(transposed)
+        if i in set(wanted)
+    }
+    for i in wanted:  # every record ends before this column
+        out.setdefault(i, np.full(len(records), None, dtype=object))
+    for r in np.flatnonzero(sizes > MAX_CELL_CHARS):  # the few records with a long line
+        for column in out.values():
+            cell = column[r]
+            if cell is not None and len(cell) > MAX_CELL_CHARS:
+                column[r] = cell[:MAX_CELL_CHARS]
+    return out
 
 
 def read_table(source: SourceDescriptor, table: TableSpec) -> tuple[pd.DataFrame, dict]:
@@ -129,19 +252,31 @@ def read_table(source: SourceDescriptor, table: TableSpec) -> tuple[pd.DataFrame
     data = table.file.read_bytes()
     digest = hashlib.sha256(data).hexdigest()
     encoding_used = None
+    text: str | None = None
+    open_row: int | None = None
     if table.format == "xlsx":
-        header, records, starts = _read_xlsx(table.file, table.sheet, table.skip_rows)
+        header, records, starts, sizes = _read_xlsx(table.file, table.sheet, table.skip_rows)
     else:
         if b"\x00" in data[:4096] and not data.startswith((b"\xff\xfe", b"\xfe\xff")):
             raise IngestError(
                 f"{table.file}: holds binary data (NUL bytes), not a {table.format.upper()} table"
             )
         text, encoding_used = _decode(data, table.encoding, table.file)
-        header, records, starts = _read_delimited(
-            text, "\t" if table.format == "tsv" else ",", table.skip_rows
+        if "\x00" in text:
+            line = text.count("\n", 0, text.index("\x00")) + 1
+            raise IngestError(
+                f"{table.file}: holds a NUL character on line {line} (binary data), "
+                f"not a {table.format.upper()} table"
+            )
+        header, records, starts, sizes, open_row = _read_delimited(
+            text, "\t" if table.format == "tsv" else ",", table.skip_rows, table.file
         )
-    if not header and data.strip():
-        raise IngestError(f"{table.file}: no header row found")
+    if not header:
+        what = f"has only blank lines below skip_rows = {table.skip_rows}" if data.strip() else "is empty"
+        raise IngestError(
+            f"{table.file}: {what}; no header row found (expected a header naming the columns "
+            f"{', '.join(repr(h) for h in table.columns.values())})"
+        )
     missing = [h for f, h in table.columns.items() if h not in header]
     if missing:
         raise IngestError(
@@ -150,19 +285,14 @@ def read_table(source: SourceDescriptor, table: TableSpec) -> tuple[pd.DataFrame
         )
     position = {h: i for i, h in enumerate(header)}
     width = len(header)
-    row_error: list[str | None] = []
-    for record in records:
-        # trailing empty cells are harmless; missing or extra filled cells are not
-        if len(record) < width or any(c.strip() for c in record[width:]):
-            row_error.append(f"row has {len(record)} cells but the header has {width}")
-        elif any(len(c) > MAX_CELL_CHARS for c in record):
-            row_error.append(f"a cell is longer than {MAX_CELL_CHARS} characters")
-        elif any("\ufffd" in c for c in record):
-            row_error.append(
-                f"row holds bytes that are not valid {encoding_used}; set 'encoding' in [table]"
-            )
-        else:
-            row_error.append(None)
+    row_error = _row_errors(
+        records, width, sizes, encoding_used, text is not None and "\ufffd" in text
+    )
+    if open_row is not None:  # the last record swallowed every line after its opening quote
+        row_error[-1] = (
+            f"a quoted cell opened on line {open_row} is never closed: it runs to the end of "
+            f"the file (line {len(_split_lines(text or ''))}); close the quote"
+        )
     frame = pd.DataFrame(
         {
             "source_id": source.id,
@@ -171,12 +301,11 @@ def read_table(source: SourceDescriptor, table: TableSpec) -> tuple[pd.DataFrame
             "row_error": pd.array(row_error, dtype=object),
         }
     )
+    wanted = sorted({position[table.columns[f]] for f in FIELDS if f in table.columns})
+    columns = _columns(records, wanted, sizes)
     for field in FIELDS:
         if field in table.columns:
-            i = position[table.columns[field]]
-            frame[field] = pd.array(
-                [r[i][:MAX_CELL_CHARS] if i < len(r) else None for r in records], dtype=object
-            )
+            frame[field] = pd.array(columns[position[table.columns[field]]], dtype=object)
         else:
             frame[field] = pd.array([None] * len(records), dtype=object)
     file_record = {

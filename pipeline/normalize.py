@@ -13,10 +13,10 @@ evaluated on the few unique conditions and broadcast back.
 
 from __future__ import annotations
 
-import hashlib
 from collections.abc import Callable
 from dataclasses import dataclass
 
+import duckdb
 import numpy as np
 import pandas as pd
 
@@ -40,20 +40,37 @@ class NormalizeResult:
 def make_value_ids(source_id: pd.Series, table_file: pd.Series, source_row: pd.Series) -> pd.Series:
     """Stable value ids: ``kv-`` + 16 hex digits of sha256(source id, table file, row).
 
+    The key is the three joined by U+001F (unit separator), hashed as UTF-8 with SHA-256
+    (FIPS 180-4), computed by DuckDB's ``sha256`` over the whole column.
+
     The id depends only on where the value sits, so an unchanged source gives the same ids on
     every rebuild and an edited cell keeps its id (a diff then shows it as changed).
+
+    Examples
+    --------
+    References
+    ----------
+    .. [1] NIST. Secure Hash Standard (SHS), FIPS PUB 180-4, 2015.
+           https://doi.org/10.6028/NIST.FIPS.180-4
 
     Examples
     --------
     >>> make_value_ids(pd.Series(["demo"]), pd.Series(["t.csv"]), pd.Series([2])).iloc[0]
     'kv-2125e212d7f0c450'
     """
-    keys = source_id.astype(str) + "\x1f" + table_file.astype(str) + "\x1f" + source_row.astype(str)
-    return pd.Series(
-        ["kv-" + hashlib.sha256(k.encode("utf-8")).hexdigest()[:16] for k in keys],
-        index=source_id.index,
-        dtype=object,
+    keys = pd.DataFrame(
+        {
+            "k": (source_id.astype(str) + "\x1f" + table_file.astype(str) + "\x1f"
+                  + source_row.astype(str)).astype(object)
+        }
     )
+    if keys.empty:
+        return pd.Series([], index=source_id.index, dtype=object)
+    # DuckDB's sha256 (of the UTF-8 bytes, hex) is hashlib.sha256, column-wise and in C++
+    with duckdb.connect() as con:
+        con.register("value_keys", keys)
+        ids = con.execute("SELECT 'kv-' || left(sha256(k), 16) FROM value_keys").fetchnumpy()
+    return pd.Series(next(iter(ids.values())).astype(object), index=source_id.index, dtype=object)
 
 
 def _blank(text: pd.Series) -> pd.Series:
@@ -102,6 +119,20 @@ def _on_unique(
     return values[inverse], errors[inverse]
 
 
+def _by_decimal(
+    func: Callable[..., pd.DataFrame], text: pd.Series, row_decimal: np.ndarray
+) -> pd.DataFrame:
+    """``func(text, decimal=mark)`` for each decimal mark in use, rows back in place.
+
+    A table with decimal ``","`` writes its conditions with that mark too (``298,15 K``).
+    """
+    marks = np.unique(row_decimal.astype(str))
+    if len(marks) <= 1:
+        return func(text, decimal=str(marks[0]) if len(marks) else ".")
+    parts = [func(text[row_decimal == mark], decimal=str(mark)) for mark in marks]
+    return pd.concat(parts).reindex(text.index)
+
+
 def _rejects_for(
     frame: pd.DataFrame, mask: pd.Series, field: str, raw: pd.Series, reason: pd.Series | str
 ) -> pd.DataFrame:
@@ -119,13 +150,76 @@ def _rejects_for(
     )
 
 
+@dataclass(frozen=True)
+class SourcePart:
+    """What normalize makes of one source's rows on their own (see :func:`normalize_rows`).
+
+    Everything here depends only on that source's cells, its descriptor, the steward's
+    synonyms and the code, so a build may keep it and reuse it while those are unchanged.
+    """
+
+    measurements: pd.DataFrame  # accepted rows, published layout; steps as given (not inferred)
+    rejects: pd.DataFrame
+    lineage: pd.DataFrame
+    resolved: pd.DataFrame  # identity resolution of the accepted rows, row for row
+
+
 def normalize(
     raw_cells: pd.DataFrame,
     tables: pd.DataFrame,
     synonyms: pd.DataFrame | None = None,
     identity_cache: identity.IdentityCache | None = None,
 ) -> NormalizeResult:
-    """Normalize raw cells to measurements, rejects and lineage (see module docstring)."""
+    """Normalize raw cells to measurements, rejects and lineage (see module docstring).
+
+    Each source is normalized on its own (:func:`normalize_rows`), then the steps that look
+    across sources (step inference, identity findings, the compounds table) run on the whole
+    set (:func:`combine`). A build that reuses kept parts of unchanged sources therefore gets
+    exactly what this function returns.
+    """
+    if raw_cells.empty:
+        parts = [normalize_rows(raw_cells, tables, synonyms, identity_cache)]
+    else:
+        parts = [
+            normalize_rows(group, tables, synonyms, identity_cache)
+            for _, group in raw_cells.groupby("source_id", sort=False)
+        ]
+    return combine(parts)
+
+
+def combine(parts: list[SourcePart]) -> NormalizeResult:
+    """Join per-source parts (in source order) and run the whole-set steps of normalize."""
+    measurements = pd.concat([p.measurements for p in parts], ignore_index=True)
+    resolved = pd.concat([p.resolved for p in parts], ignore_index=True)
+    rejects = pd.concat([p.rejects for p in parts], ignore_index=True)
+    lineage = pd.concat([p.lineage for p in parts], ignore_index=True)
+    filled = identity.infer_steps(measurements)
+    measurements["step"] = filled["step"].astype("Int64")
+    measurements["step_inferred"] = filled["step_inferred"].astype(bool)
+    measurements = MEASUREMENTS.validate(measurements)
+    return NormalizeResult(
+        measurements=measurements,
+        rejects=REJECTS.validate(
+            rejects.sort_values(["source_id", "source_row", "field"], kind="stable").reset_index(drop=True)
+        ),
+        lineage=LINEAGE.validate(lineage),
+        compounds=_compound_table(resolved),
+        identity_findings=identity.identity_findings(
+            resolved, measurements["source_id"], measurements["value_id"]
+        ),
+    )
+
+
+def normalize_rows(
+    raw_cells: pd.DataFrame,
+    tables: pd.DataFrame,
+    synonyms: pd.DataFrame | None = None,
+    identity_cache: identity.IdentityCache | None = None,
+) -> SourcePart:
+    """Normalize rows on their own: parse, convert, resolve identity, record lineage.
+
+    Works on any subset of rows (a build calls it once per source); see :func:`combine`.
+    """
     cells = raw_cells.reset_index(drop=True)
     rejects: list[pd.DataFrame] = []
 
@@ -179,7 +273,7 @@ def normalize(
     # 4. temperature
     temp_text = _with_defaults(cells, tables, "temperature")
     temp_blank = _blank(temp_text["text"])
-    temp = parse.parse_temperature(temp_text["text"].where(~temp_blank, ""))
+    temp = _by_decimal(parse.parse_temperature, temp_text["text"].where(~temp_blank, ""), row_decimal)
     reject(temp_blank, "temperature", temp_text["text"], "temperature is missing and [defaults] gives none")
     reject(~temp_blank & temp["error"].notna(), "temperature", temp_text["text"], temp["error"])
     temperature_k = temp["kelvin"].astype(float)
@@ -187,7 +281,7 @@ def normalize(
     # 5. ionic strength, with its scale and background electrolyte
     ionic_text = _with_defaults(cells, tables, "ionic_strength")
     ionic_blank = _blank(ionic_text["text"])
-    ionic = parse.parse_ionic_strength(ionic_text["text"].where(~ionic_blank, ""))
+    ionic = _by_decimal(parse.parse_ionic_strength, ionic_text["text"].where(~ionic_blank, ""), row_decimal)
     reject(
         ionic_blank, "ionic_strength", ionic_text["text"], "ionic strength is missing and [defaults] gives none"
     )
@@ -331,24 +425,15 @@ def normalize(
             "status": "ok",
         }
     )[acc]
-    filled = identity.infer_steps(measurements)
-    measurements["step"] = filled["step"].astype("Int64")
-    measurements["step_inferred"] = filled["step_inferred"].astype(bool)
-    measurements = MEASUREMENTS.validate(measurements.reset_index(drop=True))
-
     lineage = _measurement_lineage(
         cells[acc], tables, value_id[acc], quantity_text[acc], temp_text[acc], ionic_text[acc],
         parsed[acc], pkw_used[acc], ionic_value[acc], molal[acc], units[acc], ctype[acc],
     )
-
-    compounds = _compound_table(resolved[acc])
-    found = identity.identity_findings(resolved[acc], cells.loc[acc, "source_id"], value_id[acc])
-    return NormalizeResult(
-        measurements=measurements,
-        rejects=REJECTS.validate(all_rejects.sort_values(["source_id", "source_row", "field"]).reset_index(drop=True)),
-        lineage=LINEAGE.validate(lineage),
-        compounds=compounds,
-        identity_findings=found,
+    return SourcePart(
+        measurements=measurements.reset_index(drop=True),
+        rejects=all_rejects.reset_index(drop=True),
+        lineage=lineage,
+        resolved=resolved[acc].reset_index(drop=True),
     )
 
 
