@@ -54,8 +54,9 @@ def recheck(db: Path | str, config_path: Path | str | None = None) -> pd.DataFra
     """Run the chemistry rules again on a built database; return every finding.
 
     The registered rules (``pipeline.checks.RULES``) run on the published measurements with
-    the settings of ``config_path``; findings of the other stages (identity, consensus) are
-    taken as stored, since they need the build's inputs.
+    the settings of ``config_path``, or, without one, the config recorded in ``build_info``
+    when the database was built. Findings of the other stages (identity, consensus) are taken
+    as stored, since they need the build's inputs.
     """
     from pipeline.build import load_config
     from pipeline.checks import RULES, run_rules
@@ -65,9 +66,13 @@ def recheck(db: Path | str, config_path: Path | str | None = None) -> pd.DataFra
     try:
         measurements = con.execute("SELECT * FROM measurements ORDER BY value_id").df()
         stored = con.execute("SELECT * FROM findings").df()
+        recorded = con.execute("SELECT value FROM build_info WHERE key = 'config'").fetchone()
     finally:
         con.close()
-    config = load_config(Path(config_path) if config_path else None)
+    if config_path is not None:
+        config = load_config(Path(config_path))
+    else:
+        config = json.loads(recorded[0]) if recorded else {}
     measurements = MEASUREMENTS.validate(measurements[list(MEASUREMENTS.columns)])
     fresh = run_rules(measurements, config.get("rules", {}))
     other = stored[~stored["rule"].isin(list(RULES))]
@@ -193,7 +198,8 @@ def parser() -> argparse.ArgumentParser:
     r.set_defaults(func=_cmd_report)
     c = sub.add_parser("check", help="run the rules on a built database; exit 1 on error findings")
     c.add_argument("--db", type=Path, default=DEFAULT_OUT)
-    c.add_argument("--config", type=Path, default=Path("kaledger.toml"), help="project config (rule settings)")
+    c.add_argument("--config", type=Path, default=None,
+                   help="rule settings to check with (default: those the database was built with)")
     c.add_argument("--fitness", action="store_true",
                    help="instead, recompute the reference pH solutions (IUPAC buffer standards) "
                    "from the library and exit 1 when one drifts beyond its tolerance")
