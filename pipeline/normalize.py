@@ -437,15 +437,26 @@ def normalize_rows(
     )
 
 
+def _most_common(frame: pd.DataFrame, column: str) -> pd.Series:
+    """Per compound, the most frequent non-empty value of ``column`` (ties: alphabetical)."""
+    counts = frame.dropna(subset=[column]).groupby(["compound_id", column]).size().rename("n")
+    ranked = counts.reset_index().sort_values(["compound_id", "n", column], ascending=[True, False, True])
+    return ranked.drop_duplicates("compound_id").set_index("compound_id")[column]
+
+
 def _compound_table(resolved: pd.DataFrame) -> pd.DataFrame:
-    """One row per compound: the first non-empty name, CAS and structure seen for it."""
+    """One row per compound: its structure, and the name and CAS most sources use for it.
+
+    The CAS is counted only on rows that gave the parent itself (not a salt), so that sodium
+    acetate's CAS does not become acetic acid's.
+    """
     cols = ["compound_id", "name", "inchikey", "smiles", "cas", "formula", "resolved_by"]
-    frame = resolved.reindex(columns=cols)
-    return (
-        frame.groupby("compound_id", sort=True, dropna=False)
-        .first()
-        .reset_index()[cols]
-    )
+    frame = resolved.reindex(columns=cols + ["species_smiles"])
+    table = frame.groupby("compound_id", sort=True, dropna=False)[cols[1:]].first()
+    table["name"] = _most_common(frame, "name").reindex(table.index).fillna(table["name"])
+    parent_rows = frame[frame["species_smiles"].isna() | (frame["species_smiles"] == frame["smiles"])]
+    table["cas"] = _most_common(parent_rows, "cas").reindex(table.index).fillna(table["cas"])
+    return table.reset_index()[cols]
 
 
 def _json_lines(frame: pd.DataFrame) -> list[str]:
