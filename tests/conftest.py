@@ -58,3 +58,24 @@ def raw_dir(tmp_path: Path) -> Path:
     raw = tmp_path / "raw"
     raw.mkdir()
     return raw
+
+
+@pytest.fixture(scope="session")
+def demo_db(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The demo raw/ built once per test session; tests only read it."""
+    from pipeline.build import build
+
+    out = tmp_path_factory.mktemp("demo-build") / "kaledger.duckdb"
+    build(DEMO_RAW, out)
+    return out
+
+
+def query(db: Path, sql: str, *params: object) -> list[tuple]:
+    """Rows of a read-only query on a published database (parameters, never string-built)."""
+    import duckdb
+
+    con = duckdb.connect(str(db), read_only=True)
+    try:
+        return con.execute(sql, list(params)).fetchall()
+    finally:
+        con.close()

@@ -5,39 +5,23 @@ from __future__ import annotations
 import shutil
 from pathlib import Path
 
-import duckdb
 import pytest
-from conftest import DEMO_RAW, write_source
+from conftest import DEMO_RAW, query, write_source
 
 from pipeline.build import build
 from pipeline.cli import main, trace
 from pipeline.publish import TABLE_ORDER
 
 
-@pytest.fixture(scope="module")
-def demo_db(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    out = tmp_path_factory.mktemp("build") / "kaledger.duckdb"
-    build(DEMO_RAW, out)
-    return out
-
-
-def _q(db: Path, sql: str, *params: object) -> list[tuple]:
-    con = duckdb.connect(str(db), read_only=True)
-    try:
-        return con.execute(sql, list(params)).fetchall()
-    finally:
-        con.close()
-
-
 def test_every_table_is_published(demo_db: Path) -> None:
-    names = {r[0] for r in _q(demo_db, "SHOW TABLES")}
+    names = {r[0] for r in query(demo_db, "SHOW TABLES")}
     assert set(TABLE_ORDER) <= names
     for table in ("sources", "compounds", "measurements", "rejects", "findings", "recommended", "lineage"):
-        assert _q(demo_db, f"SELECT count(*) FROM {table}")[0][0] > 0, table
+        assert query(demo_db, f"SELECT count(*) FROM {table}")[0][0] > 0, table
 
 
 def test_nothing_is_lost_per_source(demo_db: Path) -> None:
-    rows = _q(
+    rows = query(
         demo_db,
         """SELECT s.source_id, s.row_count,
                   (SELECT count(*) FROM measurements m WHERE m.source_id = s.source_id),
@@ -51,7 +35,7 @@ def test_nothing_is_lost_per_source(demo_db: Path) -> None:
 
 def test_demo_rejects_have_reasons(demo_db: Path) -> None:
     # the six deliberate bad rows listed in raw/README.md (R1-R6)
-    rejects = {(s, r): reason for s, r, reason in _q(demo_db, "SELECT source_id, source_row, reason FROM rejects")}
+    rejects = {(s, r): reason for s, r, reason in query(demo_db, "SELECT source_id, source_row, reason FROM rejects")}
     assert rejects[("fernhollow-titrations", 5)] == "value '4,7,6' is not a number"
     assert rejects[("fernhollow-titrations", 23)] == "value is empty"
     assert "negative" in rejects[("fernhollow-titrations", 27)]
@@ -62,7 +46,7 @@ def test_demo_rejects_have_reasons(demo_db: Path) -> None:
 
 
 def test_demo_fires_the_rules(demo_db: Path) -> None:
-    fired = {r[0] for r in _q(demo_db, "SELECT DISTINCT rule FROM findings")}
+    fired = {r[0] for r in query(demo_db, "SELECT DISTINCT rule FROM findings")}
     expected = {
         "pka_physical_bounds", "pka_outside_water_range", "implausible_precision",
         "implausible_uncertainty", "polyprotic_order", "ka_kb_kw", "bounded_value",
@@ -72,14 +56,14 @@ def test_demo_fires_the_rules(demo_db: Path) -> None:
     }
     assert expected <= fired
     # the methane pKa 40 row is an error: kept in measurements, kept out of recommended
-    (status,) = _q(demo_db, "SELECT status FROM measurements WHERE pka = 40")[0]
+    (status,) = query(demo_db, "SELECT status FROM measurements WHERE pka = 40")[0]
     assert status == "excluded"
-    assert _q(demo_db, "SELECT count(*) FROM recommended WHERE pka = 40")[0][0] == 0
+    assert query(demo_db, "SELECT count(*) FROM recommended WHERE pka = 40")[0][0] == 0
 
 
 def test_boric_acid_consensus_ignores_the_outlier(demo_db: Path) -> None:
     # boric acid 9.237 (from memory) and 9.24 agree; the 9.5 of one compilation is flagged
-    (pka, category) = _q(
+    (pka, category) = query(
         demo_db,
         "SELECT pka, category FROM recommended WHERE compound_id = 'KGBXLFKZBHKPEV-UHFFFAOYSA-N' "
         "AND ionic_strength_molal = 0 AND abs(temperature_k - 298.15) < 0.01",
@@ -90,7 +74,7 @@ def test_boric_acid_consensus_ignores_the_outlier(demo_db: Path) -> None:
 
 def test_copies_are_recognised(demo_db: Path) -> None:
     # acetic acid 4.756 (Harned & Ehlers 1933) copied through two compilations
-    copies = _q(demo_db, "SELECT count(*) FROM measurements WHERE copy_of IS NOT NULL")[0][0]
+    copies = query(demo_db, "SELECT count(*) FROM measurements WHERE copy_of IS NOT NULL")[0][0]
     assert copies >= 2
 
 
@@ -98,13 +82,13 @@ def test_rebuild_gives_same_ids_and_contents(demo_db: Path, tmp_path: Path) -> N
     again = tmp_path / "again.duckdb"
     build(DEMO_RAW, again)
     for table in ("measurements", "rejects", "findings", "recommended", "lineage", "compounds", "sources"):
-        a = _q(demo_db, f"SELECT * FROM {table} ORDER BY ALL")
-        b = _q(again, f"SELECT * FROM {table} ORDER BY ALL")
+        a = query(demo_db, f"SELECT * FROM {table} ORDER BY ALL")
+        b = query(again, f"SELECT * FROM {table} ORDER BY ALL")
         assert a == b, table
 
 
 def test_trace_of_a_pkb_value(demo_db: Path) -> None:
-    (value_id,) = _q(demo_db, "SELECT value_id FROM measurements WHERE quantity_reported = 'pKb' LIMIT 1")[0]
+    (value_id,) = query(demo_db, "SELECT value_id FROM measurements WHERE quantity_reported = 'pKb' LIMIT 1")[0]
     account = trace(demo_db, value_id)
     ops = [s["operation"] for s in account["steps"]]
     assert ops[0] == "read_cell" and "pkb_to_pka" in ops

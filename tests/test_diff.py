@@ -22,9 +22,8 @@ import json
 import shutil
 from pathlib import Path
 
-import duckdb
 import pytest
-from conftest import DEMO_RAW
+from conftest import DEMO_RAW, query
 
 from pipeline.build import build
 from pipeline.cli import main
@@ -54,17 +53,9 @@ def builds(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, Path]:
     return old_db, new_db
 
 
-def _q(db: Path, sql: str) -> list[tuple]:
-    con = duckdb.connect(str(db), read_only=True)
-    try:
-        return con.execute(sql).fetchall()
-    finally:
-        con.close()
-
-
 def _rec_of(db: Path, source_id: str, row: int) -> str:
     """The recommendation whose consensus lists the value of ``source_id`` row ``row``."""
-    return _q(db, f"""
+    return query(db, f"""
         SELECT l.target_id FROM lineage l, measurements m
         WHERE l.operation = 'consensus' AND m.source_id = '{source_id}' AND m.source_row = {row}
           AND list_contains(json_extract_string(l.inputs, '$[*]'), m.value_id)""")[0][0]
@@ -83,7 +74,7 @@ def test_diff_reports_exactly_the_three_edits(builds: tuple[Path, Path]) -> None
     (added,) = values["added"]
     assert (added["source_id"], added["source_row"], added["name_reported"], added["pka"]) == (OAAC, 74, "pivalic acid", 5.03)
     assert values["removed"] == []
-    celandine_ids = sorted(v for (v,) in _q(old, f"SELECT value_id FROM measurements WHERE source_id = '{CELANDINE}'"))
+    celandine_ids = sorted(v for (v,) in query(old, f"SELECT value_id FROM measurements WHERE source_id = '{CELANDINE}'"))
     assert len(celandine_ids) == 10
     assert values["removed_with_source"] == {CELANDINE: celandine_ids}
     (edited,) = values["changed"]

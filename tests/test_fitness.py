@@ -22,13 +22,6 @@ from pipeline.fitness import CASES, run_fitness
 PUBLISHED = {"phthalate": 4.005, "phosphate": 6.865, "borax": 9.180, "carbonate": 10.012}
 
 
-@pytest.fixture(scope="module")
-def demo_db(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    out = tmp_path_factory.mktemp("fitbuild") / "kaledger.duckdb"
-    build(DEMO_RAW, out)
-    return out
-
-
 def test_cases_carry_the_published_values() -> None:
     by_key = {c.key: c for c in CASES}
     for key, value in PUBLISHED.items():

@@ -18,10 +18,8 @@ from typing import Any
 import duckdb
 import numpy as np
 import pytest
-from conftest import DEMO_RAW
 
 from pipeline import Library
-from pipeline.build import build
 from pipeline.cli import main
 from pipeline.library import (
     AmbiguousCompoundError,
@@ -43,13 +41,6 @@ INJECTIONS = [
     "64-19-7'; DROP TABLE recommended; --",
     "Robert'); DROP TABLE compounds;--",
 ]
-
-
-@pytest.fixture(scope="module")
-def demo_db(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    out = tmp_path_factory.mktemp("libbuild") / "kaledger.duckdb"
-    build(DEMO_RAW, out)
-    return out
 
 
 @pytest.fixture

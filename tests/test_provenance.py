@@ -25,7 +25,7 @@ import duckdb
 import frictionless
 import prov
 import pytest
-from conftest import BASIC_TOML, DEMO_RAW, write_source
+from conftest import BASIC_TOML, DEMO_RAW, query, write_source
 from prov.model import ProvDocument, ProvWarning
 
 from pipeline import provenance
@@ -36,21 +36,6 @@ from pipeline.publish import TABLE_ORDER
 PORTABLE_TYPES = {"VARCHAR", "BIGINT", "INTEGER", "DOUBLE", "BOOLEAN"}
 
 
-@pytest.fixture(scope="module")
-def demo_db(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    out = tmp_path_factory.mktemp("prov-build") / "kaledger.duckdb"
-    build(DEMO_RAW, out)
-    return out
-
-
-def _q(db: Path, sql: str, *params: object) -> list[tuple]:
-    con = duckdb.connect(str(db), read_only=True)
-    try:
-        return con.execute(sql, list(params)).fetchall()
-    finally:
-        con.close()
-
-
 # ---------------------------------------------------------------------------------- trace
 
 
@@ -58,7 +43,7 @@ def test_trace_of_a_pkb_value_shows_cell_text_pkw_and_citation(
     demo_db: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
     # Brackwater line 29: ammonia, pKb 4.75 at 25 °C (raw/README.md)
-    (value_id,) = _q(demo_db, """SELECT value_id FROM measurements WHERE source_id = 'brackwater-teaching-tables'
+    (value_id,) = query(demo_db, """SELECT value_id FROM measurements WHERE source_id = 'brackwater-teaching-tables'
                                  AND source_row = 29""")[0]
     account = provenance.trace(demo_db, value_id)
     ops = [s["operation"] for s in account["steps"]]
@@ -87,7 +72,7 @@ def test_trace_of_a_pkb_value_shows_cell_text_pkw_and_citation(
 def test_trace_of_a_recommended_value_lists_traceable_members(
     demo_db: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
-    rec_id, n = _q(demo_db, "SELECT recommendation_id, n_values FROM recommended WHERE n_values >= 2 ORDER BY ALL LIMIT 1")[0]
+    rec_id, n = query(demo_db, "SELECT recommendation_id, n_values FROM recommended WHERE n_values >= 2 ORDER BY ALL LIMIT 1")[0]
     account = provenance.trace(demo_db, rec_id)
     assert account["kind"] == "recommended" and account["steps"][0]["operation"] == "consensus"
     member_ids = [m["value_id"] for m in account["members"]]
@@ -112,7 +97,7 @@ def test_trace_of_an_unknown_id_names_both_id_kinds(demo_db: Path, capsys: pytes
 
 
 def test_build_manifest_hashes_every_input_and_counts_every_stage(demo_db: Path) -> None:
-    info = dict(_q(demo_db, "SELECT key, value FROM build_info"))
+    info = dict(query(demo_db, "SELECT key, value FROM build_info"))
     assert info["schema_version"] == "1" and info["package_version"]
     assert json.loads(info["config"]) == {}
     hashes = json.loads(info["input_sha256"])
@@ -126,14 +111,14 @@ def test_build_manifest_hashes_every_input_and_counts_every_stage(demo_db: Path)
     # invariant 1 (nothing lost): rows read = measurements + rejected rows
     assert counts["normalize"]["measurements"] + counts["normalize"]["rejected_rows"] == 143
     for table, rows in counts["publish"]["tables"].items():
-        assert _q(demo_db, f"SELECT count(*) FROM {table}")[0][0] == rows, table
+        assert query(demo_db, f"SELECT count(*) FROM {table}")[0][0] == rows, table
     assert sum(counts["consolidate"]["status"].values()) == counts["normalize"]["measurements"]
     assert "iapws" in json.loads(info["library_versions"])
 
 
 def test_published_file_uses_portable_types_only(demo_db: Path) -> None:
     # readable by the DuckDB CLI, R and other clients: no Python-only or exotic column types
-    types = _q(demo_db, "SELECT table_name, column_name, data_type FROM information_schema.columns")
+    types = query(demo_db, "SELECT table_name, column_name, data_type FROM information_schema.columns")
     assert {t for _, _, t in types} <= PORTABLE_TYPES, [x for x in types if x[2] not in PORTABLE_TYPES]
     assert {t for t, _, _ in types} >= set(TABLE_ORDER)
 
@@ -190,8 +175,8 @@ def test_prov_export_reads_back_and_validates(demo_db: Path, tmp_path: Path) -> 
     assert len(unified.get_records()) > 0
 
     entities = {str(e.identifier): e for e in doc.get_records(prov.model.ProvEntity)}
-    n_values = _q(demo_db, "SELECT count(*) FROM measurements")[0][0]
-    n_recs = _q(demo_db, "SELECT count(*) FROM recommended")[0][0]
+    n_values = query(demo_db, "SELECT count(*) FROM measurements")[0][0]
+    n_recs = query(demo_db, "SELECT count(*) FROM recommended")[0][0]
     assert sum(k.startswith("kv:") for k in entities) == n_values
     assert sum(k.startswith("kr:") for k in entities) == n_recs
     assert sum(k.startswith("cell:") for k in entities) == n_values
@@ -199,7 +184,7 @@ def test_prov_export_reads_back_and_validates(demo_db: Path, tmp_path: Path) -> 
     assert {a.split(":")[1] for a in activities} == set(provenance.STAGES)
 
     # the pKb value: measurement <- cell <- file, with the file's sha256 and licence
-    (value_id,) = _q(demo_db, """SELECT value_id FROM measurements WHERE source_id = 'brackwater-teaching-tables'
+    (value_id,) = query(demo_db, """SELECT value_id FROM measurements WHERE source_id = 'brackwater-teaching-tables'
                                  AND source_row = 29""")[0]
     derived = {}
     for rel in doc.get_records(prov.model.ProvDerivation):
@@ -241,7 +226,7 @@ def test_data_package_validates_and_carries_licences_and_citations(demo_db: Path
     assert report.valid, report.flatten(["resourcePath", "type", "note"])[:10]
 
     descriptor = json.loads((out / "datapackage.json").read_text(encoding="utf-8"))
-    sources = {s: (c, lic) for s, c, lic in _q(demo_db, "SELECT source_id, citation, license FROM sources")}
+    sources = {s: (c, lic) for s, c, lic in query(demo_db, "SELECT source_id, citation, license FROM sources")}
     assert {lic["name"] for lic in descriptor["licenses"]} == {lic for _, lic in sources.values()}
     listed = {s["kaledger:source_id"]: (s["citation"], s["licenses"][0]["name"]) for s in descriptor["sources"]}
     assert listed == sources
@@ -312,7 +297,7 @@ def test_exclude_restricted_leaves_the_source_and_its_values_out(restricted_db: 
         def rows(table: str) -> list[tuple]:
             return con.execute(f"SELECT * FROM read_parquet('{out / 'parquet' / (table + '.parquet')}')").fetchall()
 
-        closed = {v for (v,) in _q(restricted_db, "SELECT value_id FROM measurements WHERE source_id = 'closed-one'")}
+        closed = {v for (v,) in query(restricted_db, "SELECT value_id FROM measurements WHERE source_id = 'closed-one'")}
         assert len(closed) == 2
         assert {r[0] for r in rows("measurements")}.isdisjoint(closed)
         assert {r[0] for r in rows("lineage")}.isdisjoint(closed)
@@ -321,7 +306,7 @@ def test_exclude_restricted_leaves_the_source_and_its_values_out(restricted_db: 
             f"SELECT count(*) FROM read_parquet('{out / 'parquet' / 'recommended.parquet'}')").fetchone()[0]
     finally:
         con.close()
-    assert _q(restricted_db, "SELECT count(*) FROM recommended")[0][0] == 3  # acetic, formic, benzoic
+    assert query(restricted_db, "SELECT count(*) FROM recommended")[0][0] == 3  # acetic, formic, benzoic
     assert kept == 1
 
 

@@ -12,10 +12,9 @@ from html.parser import HTMLParser
 from pathlib import Path
 from urllib.parse import unquote, urlsplit
 
-import duckdb
 import pandas as pd
 import pytest
-from conftest import DEMO_RAW, write_source
+from conftest import DEMO_RAW, query, write_source
 from PIL import Image
 
 from pipeline import report
@@ -100,14 +99,6 @@ def pages(demo: tuple[Path, Path]) -> dict[Path, _Page]:
     return {p: _parse(p) for p in [out / "index.html", *sorted((out / "compound").glob("*.html"))]}
 
 
-def _q(db: Path, sql: str) -> list[tuple]:
-    con = duckdb.connect(str(db), read_only=True)
-    try:
-        return con.execute(sql).fetchall()
-    finally:
-        con.close()
-
-
 def _index_text(pages: dict[Path, _Page], demo: tuple[Path, Path]) -> str:
     return " ".join(pages[demo[1] / "index.html"].text)
 
@@ -143,7 +134,7 @@ def test_every_source_appears_with_its_counts(demo: tuple[Path, Path], pages: di
     db, out = demo
     index = pages[out / "index.html"]
     text = _index_text(pages, demo)
-    sources = _q(db, "SELECT source_id, row_count, accepted, rejected FROM sources")
+    sources = query(db, "SELECT source_id, row_count, accepted, rejected FROM sources")
     assert len(sources) == 4  # raw/README.md: four demo sources
     for source_id, read, accepted, rejected in sources:
         assert report.anchor("source", source_id) in index.ids
@@ -159,14 +150,14 @@ def test_every_fired_rule_appears_and_links_to_its_values(
 ) -> None:
     db, out = demo
     index = pages[out / "index.html"]
-    fired = {r[0] for r in _q(db, "SELECT DISTINCT rule FROM findings")}
+    fired = {r[0] for r in query(db, "SELECT DISTINCT rule FROM findings")}
     # the checks the demo's deliberate defects trigger (raw/README.md, C1-C9 and I1-I4)
     assert {"ka_kb_kw", "polyprotic_order", "pka_physical_bounds", "cas_check_digit",
             "cas_structure_conflict", "name_structure_mismatch"} <= fired
     for rule in fired:
         assert report.anchor("rule", rule) in index.ids, rule
         assert f"#{report.anchor('rule', rule)}" in index.hrefs, rule
-    value_ids = [r[0] for r in _q(db, "SELECT value_id FROM findings WHERE value_id IS NOT NULL")]
+    value_ids = [r[0] for r in query(db, "SELECT value_id FROM findings WHERE value_id IS NOT NULL")]
     linked = {h.rsplit("#", 1)[-1] for h in index.hrefs if h.startswith("compound/")}
     for vid in value_ids:
         assert report.anchor("v", vid) in linked, vid
@@ -177,7 +168,7 @@ def test_every_fired_rule_appears_and_links_to_its_values(
 def test_rejects_are_grouped_by_reason(demo: tuple[Path, Path], pages: dict[Path, _Page]) -> None:
     db, out = demo
     text = _index_text(pages, demo)
-    rejects = _q(db, "SELECT source_id, source_row, raw_text, reason FROM rejects")
+    rejects = query(db, "SELECT source_id, source_row, raw_text, reason FROM rejects")
     assert len(rejects) == 6  # raw/README.md, R1-R6
     for _, _, raw_text, reason in rejects:
         assert reason in text
@@ -237,7 +228,7 @@ def test_series_fits_match_the_published_equations(demo: tuple[Path, Path]) -> N
     assert tris.fit.delta_h == pytest.approx(47450, abs=500)
     # the deliberate +0.30 outlier at 15 °C (raw/README.md C7, Fernhollow line 10) stays out of
     # the fit: either a rule flagged it (status not ok) or the report's screen left it out
-    ((outlier,),) = _q(
+    ((outlier,),) = query(
         db, "SELECT value_id FROM measurements WHERE source_id = 'fernhollow-titrations' AND source_row = 10"
     )
     used = set(tris.value_ids) - set(tris.left_out)
