@@ -114,7 +114,9 @@ def _run(step: str, raw: Path, out: Path, profile: str | None = None) -> dict:
     done = subprocess.run(cmd, capture_output=True, text=True, check=False)
     if done.returncode != 0:
         raise SystemExit(f"step {step} failed:\n{done.stderr[-4000:]}")
-    return json.loads(done.stdout.strip().splitlines()[-1])
+    result = json.loads(done.stdout.strip().splitlines()[-1])
+    print(f"  {step}: {result['seconds']:.2f} s", file=sys.stderr, flush=True)
+    return result
 
 
 def _change_one_cell(raw: Path) -> tuple[Path, bytes]:

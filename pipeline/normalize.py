@@ -417,6 +417,7 @@ def normalize_rows(
             "name_reported": cells["name"],
             "cas_reported": cells["cas"],
             "smiles_reported": cells["smiles"],
+            "species_smiles": resolved["species_smiles"],
             "method": _with_defaults(cells, tables, "method")["text"],
             "reference": _with_defaults(cells, tables, "reference")["text"],
             "source_id": cells["source_id"],

@@ -48,6 +48,7 @@ CREATE TABLE measurements (
     name_reported         VARCHAR,
     cas_reported          VARCHAR,
     smiles_reported       VARCHAR,
+    species_smiles        VARCHAR,         -- canonical SMILES of the species as given (salt/charge kept)
     method                VARCHAR,
     reference             VARCHAR,         -- primary reference the source cites
     source_id             VARCHAR NOT NULL,

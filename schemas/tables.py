@@ -71,6 +71,7 @@ MEASUREMENTS = pa.DataFrameSchema(
         "name_reported": _text(),
         "cas_reported": _text(),
         "smiles_reported": _text(),
+        "species_smiles": _text(),
         "method": _text(),
         "reference": _text(),
         "source_id": _text(False),

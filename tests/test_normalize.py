@@ -99,3 +99,16 @@ def test_value_ids_stable_and_distinct() -> None:
     a = make_value_ids(pd.Series(["s", "s"]), pd.Series(["f.csv", "f.csv"]), pd.Series([2, 3]))
     b = make_value_ids(pd.Series(["s", "s"]), pd.Series(["f.csv", "f.csv"]), pd.Series([2, 3]))
     assert a.tolist() == b.tolist() and a.nunique() == 2
+
+
+def test_salt_row_keeps_its_species_and_maps_to_the_parent(raw_dir: Path) -> None:
+    # sodium acetate as given: the compound is acetic acid (InChIKey QTBSBXVTEAMEQO-UHFFFAOYSA-N,
+    # InChI via RDKit); the species the source named is kept beside it
+    folder = write_source(
+        raw_dir, "t1", "Compound,SMILES,Value\nsodium acetate,CC(=O)[O-].[Na+],4.76\n",
+        extra_columns='smiles = "SMILES"',
+    )
+    _, out = _run(folder)
+    m = out.measurements.iloc[0]
+    assert m["compound_id"] == "QTBSBXVTEAMEQO-UHFFFAOYSA-N"
+    assert m["species_smiles"] == "CC(=O)[O-].[Na+]"
