@@ -74,7 +74,10 @@ def make_value_ids(source_id: pd.Series, table_file: pd.Series, source_row: pd.S
 
 
 def _blank(text: pd.Series) -> pd.Series:
-    return text.isna() | (text.astype(str).str.strip() == "")
+    missing = text.isna()
+    if missing.all():
+        return missing
+    return missing | text.where(~missing, "").str.strip().eq("")
 
 
 def _with_defaults(cells: pd.DataFrame, tables: pd.DataFrame, field: str) -> pd.DataFrame:
@@ -82,12 +85,18 @@ def _with_defaults(cells: pd.DataFrame, tables: pd.DataFrame, field: str) -> pd.
 
     Returns columns ``text`` and ``from_default`` (bool).
     """
-    defaults = tables.set_index(["source_id", "table_file"])["defaults"].map(
-        lambda d: d.get(field)
-    )
-    key = pd.MultiIndex.from_frame(cells[["source_id", "table_file"]])
-    default = pd.Series(defaults.reindex(key).to_numpy(), index=cells.index, dtype=object)
     text = cells[field]
+    own = tables[tables["source_id"] == cells["source_id"].iat[0]] if len(cells) else tables
+    if len(own) == 1 and (cells["source_id"].to_numpy() == own["source_id"].iat[0]).all():
+        # one table (a build normalizes one source at a time): the default is one value
+        value = own["defaults"].iat[0].get(field)
+        default = pd.Series(value, index=cells.index, dtype=object)
+    else:
+        defaults = tables.set_index(["source_id", "table_file"])["defaults"].map(
+            lambda d: d.get(field)
+        )
+        key = pd.MultiIndex.from_frame(cells[["source_id", "table_file"]])
+        default = pd.Series(defaults.reindex(key).to_numpy(), index=cells.index, dtype=object)
     use_default = _blank(text) & default.notna()
     return pd.DataFrame(
         {"text": text.where(~use_default, default), "from_default": use_default},
@@ -489,15 +498,19 @@ def _measurement_lineage(
     location = cells["source_id"] + "/" + cells["table_file"] + "#row=" + cells["source_row"].astype(str)
     inputs_cell = '["' + location.str.replace('"', '\\"', regex=False) + '"]'
     steps: list[pd.DataFrame] = []
+    taken = np.zeros(len(cells), dtype=np.int64)  # steps recorded so far, per measurement
 
     def add(order: int, operation: str, params: pd.DataFrame, inputs: pd.Series) -> None:
+        # called in step order, so a row's step number is one more than its steps so far
         if params.empty:
             return
+        rows = cells.index.get_indexer(params.index)
+        taken[rows] += 1
         steps.append(
             pd.DataFrame(
                 {
                     "target_id": value_id[params.index],
-                    "order": order,
+                    "step_no": taken[rows],
                     "operation": operation,
                     "parameters": _json_lines(params),
                     "inputs": inputs[params.index],
@@ -586,6 +599,5 @@ def _measurement_lineage(
     columns = ["target_id", "step_no", "operation", "parameters", "inputs"]
     if not steps:
         return pd.DataFrame({c: pd.Series(dtype="int64" if c == "step_no" else object) for c in columns})
-    lineage = pd.concat(steps, ignore_index=True).sort_values(["target_id", "order"], kind="stable")
-    lineage["step_no"] = lineage.groupby("target_id").cumcount() + 1
-    return lineage[columns].reset_index(drop=True)
+    # rows grouped by step, measurements in source order within a step (consolidate sorts)
+    return pd.concat(steps, ignore_index=True)[columns]
