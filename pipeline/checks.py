@@ -13,12 +13,9 @@ the same conditions) use only aqueous, unbounded values inside the physical boun
 a value that does not fit the others without letting that value hide itself (a median reference,
 or a fit that leaves the tested temperature out).
 
-Not implemented: "Ka and pKa both reported in one row disagree beyond rounding". A row cannot
-carry two values today: the descriptor's ``[columns]`` keys are a closed set with a single
-``value`` (an unknown key stops the build), :func:`pipeline.parse.parse_values` sends a cell
-holding two numbers (``"4.76 (Ka 1.74e-5)"``) to ``rejects``, and ``MEASUREMENTS`` is a strict
-schema, so no optional second-value column can reach this stage. The rule needs a second value
-field in the ingest contract first.
+A row may report the same constant twice (descriptor fields ``value_alt`` and
+``quantity_alt``, e.g. a Ka column beside the pKa column); normalize converts both, and
+``ka_pka_row_mismatch`` flags rows whose two cells disagree beyond their rounding.
 
 References
 ----------
@@ -229,6 +226,53 @@ def _step_order(m: pd.DataFrame, config: dict) -> RuleResult:
            + " is not above pKa" + pd.Series(prev_st[bad_sorted], index=rows).astype(str) + " = "
            + _fmt(pd.Series(prev_p[bad_sorted], index=rows)) + " from the same source")
     return RuleResult(m.loc[rows, "value_id"], msg.astype(str))
+
+
+def pk_rounding(text: pd.Series, quantity: pd.Series) -> pd.Series:
+    """Half a unit in the last reported digit, expressed in pK units [pK].
+
+    A pK cell with d decimals is good to 0.5·10^-d; a K cell with s significant digits and
+    mantissa m (1 <= m < 10) to log10(1 + 0.5·10^(1-s)/m) in pK (common practice of
+    rounding; e.g. Ka "1.8e-5": s = 2, half-width log10(1 + 0.05/1.8) = 0.0119).
+
+    Examples
+    --------
+    >>> pk_rounding(pd.Series(["4.76", "1.8e-5"]), pd.Series(["pKa", "Ka"])).round(4).tolist()
+    [0.005, 0.0119]
+    """
+    text = text.astype(str)
+    number = text.str.extract(r"(\d+(?:[.,]\d*)?)", expand=False).fillna("")
+    decimals = number.str.extract(r"[.,](\d*)$", expand=False).str.len().fillna(0)
+    digits = number.str.replace(r"[.,]", "", regex=True).str.lstrip("0")
+    significant = digits.str.len().clip(lower=1)
+    leading = pd.to_numeric(digits.str[:1], errors="coerce").fillna(1).clip(lower=1)
+    rest = pd.to_numeric("0." + digits.str[1:], errors="coerce").fillna(0)
+    mantissa = leading + rest
+    is_k = quantity.isin(["Ka", "Kb"])
+    k_half = np.log10(1 + 0.5 * 10.0 ** (1 - significant) / mantissa)
+    return pd.Series(np.where(is_k, k_half, 0.5 * 10.0 ** (-decimals)), index=text.index)
+
+
+@rule(
+    "ka_pka_row_mismatch",
+    "warning",
+    "a row giving the same constant twice (e.g. Ka and pKa) whose two cells disagree beyond rounding",
+)
+def _ka_pka_row(m: pd.DataFrame, config: dict) -> RuleResult:
+    if "pka_alt" not in m or m["pka_alt"].isna().all():
+        return _result(m, pd.Series(False, index=m.index), "")
+    tolerance = (
+        pk_rounding(m["value_reported"], m["quantity_reported"])
+        + pk_rounding(m["value_alt_reported"].fillna(""), m["quantity_alt_reported"].fillna(""))
+        + config.get("extra_tolerance", 1e-9)
+    )
+    diff = (m["pka"] - m["pka_alt"]).abs()
+    bad = m["pka_alt"].notna() & (diff > tolerance)
+    msg = (m["quantity_alt_reported"].astype(str) + " '" + m["value_alt_reported"].astype(str)
+           + "' gives pKa " + _fmt(m["pka_alt"]) + " but the row's " + m["quantity_reported"].astype(str)
+           + " '" + m["value_reported"].astype(str) + "' gives " + _fmt(m["pka"]) + "; they differ by "
+           + _fmt(diff) + ", more than rounding allows (" + _fmt(tolerance, 4) + ")")
+    return _result(m, bad, msg)
 
 
 @rule("ka_kb_kw", "warning", "a pKa and a pKb of one conjugate pair at the same conditions must sum to pKw")

@@ -32,6 +32,8 @@ FIELDS = (
     "reference",
     "constant_type",
     "charge",
+    "value_alt",  # a second cell giving the same constant as another quantity (e.g. Ka beside pKa)
+    "quantity_alt",
 )
 
 #: Fields that may take a descriptor-wide default where the table has no column.
@@ -45,6 +47,7 @@ DEFAULTABLE = (
     "constant_type",
     "step",
     "charge",
+    "quantity_alt",
 )
 
 SOURCE_KINDS = ("experimental", "critical_review", "compilation", "estimated")

@@ -390,6 +390,36 @@ def normalize_rows(
                 reject(err_s.notna(), "temperature", temp_text["text"], "cannot convert " + q + " to pKa: " + err_s.astype(str))
     pka = pd.Series(np.where(is_base, pkw_used - p_value, p_value), index=cells.index)
 
+    # 10b. a second cell giving the same constant as another quantity (e.g. Ka beside pKa):
+    # converted the same way and kept for the row cross-check rule (ka_pka_row_mismatch)
+    alt_text = cells["value_alt"]
+    alt_given = ~_blank(alt_text)
+    alt_quantity = pd.Series(None, index=cells.index, dtype=object)
+    pka_alt = pd.Series(np.nan, index=cells.index)
+    if alt_given.any():
+        alt_q_text = _with_defaults(cells, tables, "quantity_alt")["text"]
+        alt_q_blank = _blank(alt_q_text)
+        alt_q = parse.parse_quantity(alt_q_text.where(~alt_q_blank, ""))
+        alt_quantity = alt_q["quantity"].where(alt_given)
+        reject(alt_given & alt_q_blank, "quantity_alt", alt_q_text,
+               "value_alt is given but not its quantity: map or default quantity_alt (pKa, Ka, pKb, Kb, logK)")
+        reject(alt_given & ~alt_q_blank & alt_q["error"].notna(), "quantity_alt", alt_q_text, alt_q["error"])
+        alt_is_base = alt_quantity.isin(["pKb", "Kb"])
+        other_side = alt_given & alt_quantity.notna() & (alt_is_base != is_base)
+        reject(other_side, "quantity_alt", alt_q_text,
+               "quantity_alt '" + alt_q_text.astype(str) + "' is the other side of the pair from quantity '"
+               + q.astype(str) + "'; value_alt must report the same constant")
+        alt = parse.parse_values(alt_text.where(alt_given, ""))
+        reject(alt_given & alt["error"].notna(), "value_alt", alt_text, alt["error"])
+        alt_value = alt["value"].astype(float)
+        alt_is_k = alt_quantity.isin(["Ka", "Kb"])
+        reject(alt_given & alt_is_k & alt_value.le(0), "value_alt", alt_text,
+               alt_quantity.astype(str) + " '" + alt_text.astype(str) + "' must be a positive number")
+        with np.errstate(divide="ignore", invalid="ignore"):
+            p_alt = pd.Series(np.where(alt_is_k, -np.log10(alt_value.where(alt_value > 0)), alt_value),
+                              index=cells.index)
+        pka_alt = pd.Series(np.where(is_base, pkw_used - p_alt, p_alt), index=cells.index).where(alt_given)
+
     # 11. assemble; a row with any reject is not a measurement
     all_rejects = pd.concat(rejects, ignore_index=True) if rejects else pd.DataFrame(columns=REJECTS.columns)
     rejected_rows = pd.MultiIndex.from_frame(all_rejects[["source_id", "source_row"]])
@@ -423,6 +453,9 @@ def normalize_rows(
             "quantity_reported": q,
             "value_reported": value_text,
             "pkw_used": pkw_used,
+            "quantity_alt_reported": alt_quantity,
+            "value_alt_reported": alt_text.where(alt_given),
+            "pka_alt": pka_alt,
             "name_reported": cells["name"],
             "cas_reported": cells["cas"],
             "smiles_reported": cells["smiles"],

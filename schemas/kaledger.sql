@@ -45,6 +45,9 @@ CREATE TABLE measurements (
     quantity_reported     VARCHAR NOT NULL,  -- pKa | Ka | pKb | Kb | logK
     value_reported        VARCHAR NOT NULL,  -- the cell text as read
     pkw_used              DOUBLE,          -- pKw applied for a pKb/Kb conversion
+    quantity_alt_reported VARCHAR,         -- a second quantity the same row reports (e.g. Ka beside pKa)
+    value_alt_reported    VARCHAR,         -- its cell text
+    pka_alt               DOUBLE,          -- the pKa that second cell gives, for the cross-check
     name_reported         VARCHAR,
     cas_reported          VARCHAR,
     smiles_reported       VARCHAR,

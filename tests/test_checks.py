@@ -328,3 +328,40 @@ def test_unknown_rule_in_config_lists_the_rules(tmp_path: Path) -> None:
 def test_reference_key_reduces_punctuation_and_case() -> None:
     keys = checks.reference_key(pd.Series(["Bates & Acree 1943, J. Res.", "bates acree 1943 j res", None, ""]))
     assert keys.tolist() == ["bates acree 1943 j res", "bates acree 1943 j res", None, None]
+
+
+# ------------------------------------------------------------------ Ka and pKa in one row
+
+
+@pytest.mark.parametrize(
+    ("ka", "pka", "fires"),
+    [
+        # -log10(1.75e-5) = 4.757 (arithmetic): agrees with "4.757" and, within rounding, "4.76"
+        ("1.75e-5", "4.757", False),
+        ("1.8e-5", "4.74", False),  # 4.7447; rounding of 1.8e-5 alone is 0.012 pK
+        # chloroacetic acid: Ka 1.36e-3 gives 2.866, not the typed 2.96 (demo row, arithmetic)
+        ("1.36e-3", "2.96", True),
+    ],
+)
+def test_ka_and_pka_in_one_row(raw_dir: Path, tmp_path: Path, ka: str, pka: str, fires: bool) -> None:
+    write_source(
+        raw_dir, "t1", f"Compound,Value,Ka\nacetic acid,{pka},{ka}\n",
+        extra_columns='value_alt = "Ka"',
+    )
+    toml = raw_dir / "t1" / "source.toml"
+    toml.write_text(toml.read_text().replace('quantity = "pKa"', 'quantity = "pKa"\nquantity_alt = "Ka"'))
+    out = tmp_path / "db.duckdb"
+    build(raw_dir, out)
+    con = duckdb.connect(str(out), read_only=True)
+    try:
+        rules = [r[0] for r in con.execute("SELECT rule FROM findings").fetchall()]
+    finally:
+        con.close()
+    assert ("ka_pka_row_mismatch" in rules) is fires
+
+
+def test_pk_rounding_half_units() -> None:
+    # half a unit in the last digit (common practice): "4.76" -> 0.005 pK; Ka "1.8e-5" ->
+    # log10(1 + 0.05/1.8) = 0.01190 pK (arithmetic)
+    got = checks.pk_rounding(pd.Series(["4.76", "1.8e-5", "0.000177"]), pd.Series(["pKa", "Ka", "Ka"]))
+    np.testing.assert_allclose(got, [0.005, np.log10(1 + 0.05 / 1.8), np.log10(1 + 0.005 / 1.77)], rtol=1e-12)

@@ -135,7 +135,7 @@ def test_every_source_appears_with_its_counts(demo: tuple[Path, Path], pages: di
     index = pages[out / "index.html"]
     text = _index_text(pages, demo)
     sources = query(db, "SELECT source_id, row_count, accepted, rejected FROM sources")
-    assert len(sources) == 4  # raw/README.md: four demo sources
+    assert len(sources) == 5  # raw/README.md: five demo sources
     for source_id, read, accepted, rejected in sources:
         assert report.anchor("source", source_id) in index.ids
         assert source_id in text
