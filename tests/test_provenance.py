@@ -107,9 +107,9 @@ def test_build_manifest_hashes_every_input_and_counts_every_stage(demo_db: Path)
     }
     assert hashes == on_disk  # descriptors, data files and synonyms.csv, hashed as read
     counts = json.loads(info["stage_counts"])
-    assert counts["ingest"] == {"sources": 5, "rows_read": 148}  # raw/README.md: 148 data rows
+    assert counts["ingest"] == {"sources": 5, "rows_read": 149}  # raw/README.md: 149 data rows
     # invariant 1 (nothing lost): rows read = measurements + rejected rows
-    assert counts["normalize"]["measurements"] + counts["normalize"]["rejected_rows"] == 148
+    assert counts["normalize"]["measurements"] + counts["normalize"]["rejected_rows"] == 149
     for table, rows in counts["publish"]["tables"].items():
         assert query(demo_db, f"SELECT count(*) FROM {table}")[0][0] == rows, table
     assert sum(counts["consolidate"]["status"].values()) == counts["normalize"]["measurements"]
