@@ -29,7 +29,7 @@ def _cmd_build(args: argparse.Namespace) -> int:
     if args.verbose:
         logging.basicConfig(level=logging.INFO, format="%(asctime)s %(name)s: %(message)s")
     show_progress = not args.quiet and sys.stdout.isatty()
-    summary = build(args.raw, args.out, args.config, progress=show_progress)
+    summary = build(args.raw, args.out, args.config, progress=show_progress, force=args.force)
     if not args.quiet:
         print("\n".join(summary.lines()))
         print()
@@ -190,6 +190,8 @@ def parser() -> argparse.ArgumentParser:
     b.add_argument("--out", type=Path, default=DEFAULT_OUT, help="database file (default build/kaledger.duckdb)")
     b.add_argument("--config", type=Path, default=Path("kaledger.toml"), help="project config (rule settings)")
     b.add_argument("--quiet", action="store_true", help="print nothing on success")
+    b.add_argument("--force", action="store_true",
+                   help="rebuild and republish even when no input has changed")
     b.add_argument("--verbose", "-v", action="store_true", help="log each stage and its time to stderr")
     b.set_defaults(func=_cmd_build)
     r = sub.add_parser("report", help="write a static HTML validation report of the database")
