@@ -452,12 +452,14 @@ def source_files(sources: pd.DataFrame, lineage: pd.DataFrame) -> pd.DataFrame:
     single = files["file"].str.len() == 1
     files = files.explode("file", ignore_index=True)
     files["single"] = files["source_id"].map(dict(zip(sources["source_id"], single, strict=True)))
-    cells = lineage.loc[lineage["operation"] == "read_cell", "parameters"]
-    if len(cells):
-        params = pd.json_normalize(cells.map(json.loads).tolist())[["file", "sha256"]].drop_duplicates("file")
-        read_sha = params.set_index("file")["sha256"]
-    else:
-        read_sha = pd.Series(dtype=object)
+    read_sha = pd.Series(dtype=object)
+    cells = lineage.loc[lineage["operation"] == "read_cell", "parameters"] if not single.all() else None
+    if cells is not None and len(cells):
+        # the read_cell JSON starts {"file":...,"sha256":...}; a regex over the text avoids
+        # decoding a million JSON objects just to list a few file hashes
+        pairs = cells.str.extract(r'^\{"file":"((?:[^"\\]|\\.)*)","sha256":"([0-9a-f]{64})"')
+        pairs = pairs.dropna().drop_duplicates(0)
+        read_sha = pd.Series(pairs[1].to_numpy(), index=pairs[0].str.replace("\\/", "/", regex=False))
     files["sha256"] = files["file_sha256"].where(files["single"], files["file"].map(read_sha))
     return files[["source_id", "file", "sha256"]]
 

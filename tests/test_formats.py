@@ -99,3 +99,24 @@ def test_windows_1252_detected_without_encoding_key(tmp_path: Path) -> None:
     read, out = _normalize(folder)
     assert len(out.measurements) == 20 and out.rejects.empty
     assert read.source_files["encoding"].iloc[0] != "utf-8"
+
+
+def test_manifest_hashes_each_table_of_a_multi_table_source(tmp_path: Path) -> None:
+    import hashlib
+    import json
+
+    from conftest import query
+
+    from pipeline.build import build
+
+    folder = tmp_path / "raw" / "multi"
+    folder.mkdir(parents=True)
+    (folder / "source.toml").write_text(TWO_TABLES, encoding="utf-8")
+    (folder / "acids.csv").write_text("Compound,Value\nacetic acid,4.756\n", encoding="utf-8")
+    (folder / "bases.tsv").write_text("Compound\tValue\nammonia\t4,75\n", encoding="utf-8")
+    out = tmp_path / "db.duckdb"
+    build(tmp_path / "raw", out)
+    (text,) = query(out, "SELECT value FROM build_info WHERE key = 'input_sha256'")[0]
+    hashes = json.loads(text)
+    for name in ("acids.csv", "bases.tsv"):  # sha256 (FIPS 180-4) of each file as read
+        assert hashes[f"multi/{name}"] == hashlib.sha256((folder / name).read_bytes()).hexdigest()
