@@ -40,6 +40,7 @@ import hashlib
 import json
 from dataclasses import dataclass
 
+import duckdb
 import numpy as np
 import pandas as pd
 
@@ -446,6 +447,24 @@ def _json_list(values: pd.Series) -> str:
     return json.dumps(sorted(values.tolist()), separators=(",", ":"))
 
 
+def _member_lists(group: pd.Series, value_id: pd.Series) -> pd.Series:
+    """Per group, the JSON array of its members' value ids, sorted (DuckDB string_agg).
+
+    Examples
+    --------
+    >>> _member_lists(pd.Series(["g", "g", "h"]), pd.Series(["kv-b", "kv-a", "kv-c"])).to_dict()
+    {'g': '["kv-a","kv-b"]', 'h': '["kv-c"]'}
+    """
+    codes, uniques = pd.factorize(group)
+    ids = pd.DataFrame({"code": codes, "value_id": value_id.to_numpy()})  # noqa: F841 (read by DuckDB)
+    agg = duckdb.sql(
+        """SELECT code, '["' || string_agg(value_id, '","' ORDER BY value_id) || '"]' AS members
+           FROM ids GROUP BY code ORDER BY code"""
+    ).df()
+    index = pd.Index(np.asarray(uniques, dtype=object)[agg["code"].to_numpy()], tupleize_cols=False)
+    return pd.Series(agg["members"].to_numpy(), index=index)
+
+
 def consolidate(
     measurements: pd.DataFrame,
     findings: pd.DataFrame,
@@ -540,7 +559,7 @@ def consolidate(
 
     # lineage of each recommended value: its members (outliers excluded) and the method
     kept = members[~outlier.to_numpy()]
-    inputs = kept.groupby("group", sort=False)["value_id"].agg(lambda s: '["' + '","'.join(sorted(s)) + '"]')
+    inputs = _member_lists(kept["group"], kept["value_id"])
     rec_id_of = pd.Series(rec_ids, index=table.index)
     consensus_step = pd.Series(1, index=table.index, dtype="int64")
     transfer_lineage = pd.DataFrame(columns=list(LINEAGE.columns))
