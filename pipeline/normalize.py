@@ -128,6 +128,31 @@ def _on_unique(
     return values[inverse], errors[inverse]
 
 
+def _on_rows(
+    mask: pd.Series, func: Callable[..., np.ndarray], *columns: pd.Series
+) -> tuple[pd.Series, pd.Series]:
+    """:func:`_on_unique` over the rows where ``mask`` holds; values (NaN elsewhere) and errors
+    (None elsewhere) aligned with ``mask``'s index."""
+    picked = mask[mask].index
+    values, errors = _on_unique(func, *(c[picked].to_numpy(dtype=float) for c in columns))
+    return (
+        pd.Series(values, index=picked).reindex(mask.index),
+        pd.Series(errors, index=picked, dtype=object).reindex(mask.index),
+    )
+
+
+def _to_pk(value: pd.Series, is_k: pd.Series) -> pd.Series:
+    """pK = -log10(K) where ``is_k`` (Ka, Kb), the value itself elsewhere; K <= 0 gives NaN.
+
+    Examples
+    --------
+    >>> _to_pk(pd.Series([1.75e-5, 4.756]), pd.Series([True, False])).round(5).tolist()
+    [4.75696, 4.756]
+    """
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return pd.Series(np.where(is_k, -np.log10(value.where(value > 0)), value), index=value.index)
+
+
 def _by_decimal(
     func: Callable[..., pd.DataFrame], text: pd.Series, row_decimal: np.ndarray
 ) -> pd.DataFrame:
@@ -351,8 +376,8 @@ def normalize_rows(
     x = parsed["value"]
     is_k = q.isin(["Ka", "Kb"])
     reject(is_k & x.le(0), "value", value_text, q + " '" + value_text.astype(str) + "' must be a positive number")
+    p_value = _to_pk(x, is_k)
     with np.errstate(divide="ignore", invalid="ignore"):
-        p_value = np.where(is_k, -np.log10(x.where(x > 0)), x)  # Ka, Kb -> pKa, pKb
         # u(pK) = u(K) / (K ln 10), first-order propagation (GUM, JCGM 100:2008, eq. 10)
         p_unc = np.where(is_k, uncertainty / (x * np.log(10)), uncertainty)
     qualifier = parsed["qualifier"].where(parsed["qualifier"].notna(), None)
@@ -365,14 +390,11 @@ def normalize_rows(
     units = ionic["unit"].fillna("mol/L")  # a bare number in a constants table is molar by custom
     is_molar = units.eq("mol/L") & ionic_value.gt(0)
     molal = ionic_value.copy()
-    if (ok_conditions & is_molar).any():
-        rows = ok_conditions & is_molar
-        vals, errs = _on_unique(
-            lambda c, t: physchem.molar_to_molal(c, t), ionic_value[rows].to_numpy(), temperature_k[rows].to_numpy()
-        )
-        molal[rows] = vals
-        errs_s = pd.Series(errs, index=rows[rows].index)
-        reject(pd.Series(False, index=cells.index).mask(rows, errs_s.notna().reindex(cells.index, fill_value=False)), "temperature", temp_text["text"], errs_s.reindex(cells.index))
+    rows = ok_conditions & is_molar
+    if rows.any():
+        vals, errs = _on_rows(rows, physchem.molar_to_molal, ionic_value, temperature_k)
+        molal[rows] = vals[rows]
+        reject(errs.notna(), "temperature", temp_text["text"], errs)
 
     is_base = q.isin(["pKb", "Kb"])
     pkw_used = pd.Series(np.nan, index=cells.index)
@@ -384,10 +406,9 @@ def normalize_rows(
             (conc, lambda t, i: physchem.pkw_at_ionic_strength(t, i)),
         ):
             if mask.any():
-                vals, errs = _on_unique(func, temperature_k[mask].to_numpy(), molal[mask].to_numpy())
-                pkw_used[mask] = vals
-                err_s = pd.Series(errs, index=mask[mask].index).reindex(cells.index)
-                reject(err_s.notna(), "temperature", temp_text["text"], "cannot convert " + q + " to pKa: " + err_s.astype(str))
+                vals, errs = _on_rows(mask, func, temperature_k, molal)
+                pkw_used[mask] = vals[mask]
+                reject(errs.notna(), "temperature", temp_text["text"], "cannot convert " + q + " to pKa: " + errs.astype(str))
     pka = pd.Series(np.where(is_base, pkw_used - p_value, p_value), index=cells.index)
 
     # 10b. a second cell giving the same constant as another quantity (e.g. Ka beside pKa):
@@ -415,9 +436,7 @@ def normalize_rows(
         alt_is_k = alt_quantity.isin(["Ka", "Kb"])
         reject(alt_given & alt_is_k & alt_value.le(0), "value_alt", alt_text,
                alt_quantity.astype(str) + " '" + alt_text.astype(str) + "' must be a positive number")
-        with np.errstate(divide="ignore", invalid="ignore"):
-            p_alt = pd.Series(np.where(alt_is_k, -np.log10(alt_value.where(alt_value > 0)), alt_value),
-                              index=cells.index)
+        p_alt = _to_pk(alt_value, alt_is_k)
         pka_alt = pd.Series(np.where(is_base, pkw_used - p_alt, p_alt), index=cells.index).where(alt_given)
 
     # 11. assemble; a row with any reject is not a measurement
@@ -469,7 +488,7 @@ def normalize_rows(
         }
     )[acc]
     lineage = _measurement_lineage(
-        cells[acc], tables, value_id[acc], quantity_text[acc], temp_text[acc], ionic_text[acc],
+        cells[acc], tables, value_id[acc], quantity_text[acc], q[acc], temp_text[acc], ionic_text[acc],
         parsed[acc], pkw_used[acc], ionic_value[acc], molal[acc], units[acc], ctype[acc],
     )
     return SourcePart(
@@ -514,6 +533,7 @@ def _measurement_lineage(
     tables: pd.DataFrame,
     value_id: pd.Series,
     quantity_text: pd.DataFrame,
+    quantity: pd.Series,
     temp_text: pd.DataFrame,
     ionic_text: pd.DataFrame,
     parsed: pd.DataFrame,
@@ -605,8 +625,7 @@ def _measurement_lineage(
         )[molar],
         own,
     )
-    q = quantity_text["text"].astype(str).str.strip()
-    is_k = parsed.index.isin(q.index[q.str.match(r"(?i)^k[ab]")])
+    is_k = quantity.isin(["Ka", "Kb"])
     add(
         5,
         "k_to_pk",
