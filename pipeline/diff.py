@@ -25,25 +25,14 @@ from typing import Any
 import duckdb
 import pandas as pd
 
+from pipeline.provenance import json_scalar
+
 DERIVED_COLUMNS = ("copy_of", "status")
 DEFAULT_THRESHOLD = 0.02  # pK units; about the spread of good independent pKa values (common practice)
 
 
 def _sql_path(path: Path) -> str:
     return "'" + str(path).replace("'", "''") + "'"
-
-
-def _plain(value: Any) -> Any:
-    if value is None:
-        return None
-    if hasattr(value, "item"):
-        value = value.item()
-    try:
-        if pd.isna(value):
-            return None
-    except (TypeError, ValueError):
-        pass
-    return value
 
 
 def _differs(a: pd.Series, b: pd.Series) -> pd.Series:
@@ -66,15 +55,15 @@ def _change_list(both: pd.DataFrame, flags: pd.DataFrame, key: str, columns: lis
     out = []
     for i in flags.index[rows]:  # loops over changed rows only (few)
         item = {key: both.at[i, key]}
-        item.update({c: _plain(both.at[i, f"{c}_new"]) for c in extra})
-        item["changes"] = {c: [_plain(both.at[i, f"{c}_old"]), _plain(both.at[i, f"{c}_new"])]
+        item.update({c: json_scalar(both.at[i, f"{c}_new"]) for c in extra})
+        item["changes"] = {c: [json_scalar(both.at[i, f"{c}_old"]), json_scalar(both.at[i, f"{c}_new"])]
                            for c in columns if flags.at[i, c]}
         out.append(item)
     return sorted(out, key=lambda d: str(d[key]))
 
 
 def _records(frame: pd.DataFrame, columns: list[str]) -> list[dict[str, Any]]:
-    return [{c: _plain(v) for c, v in row.items()} for row in frame[columns].to_dict("records")]
+    return [{c: json_scalar(v) for c, v in row.items()} for row in frame[columns].to_dict("records")]
 
 
 def diff(old: Path | str, new: Path | str, threshold: float = DEFAULT_THRESHOLD) -> dict[str, Any]:
@@ -180,10 +169,10 @@ def diff(old: Path | str, new: Path | str, threshold: float = DEFAULT_THRESHOLD)
         "moved": sorted(
             (
                 {"recommendation_id": r["recommendation_id"], "compound_id": r["compound_id_new"],
-                 "name": _plain(r["name_new"]),
-                 "step": _plain(r["step_new"]), "temperature_k": _plain(r["temperature_k_new"]),
-                 "ionic_strength_molal": _plain(r["ionic_strength_molal_new"]),
-                 "pka_old": _plain(r["pka_old"]), "pka_new": _plain(r["pka_new"]), "delta": _plain(r["delta"]),
+                 "name": json_scalar(r["name_new"]),
+                 "step": json_scalar(r["step_new"]), "temperature_k": json_scalar(r["temperature_k_new"]),
+                 "ionic_strength_molal": json_scalar(r["ionic_strength_molal_new"]),
+                 "pka_old": json_scalar(r["pka_old"]), "pka_new": json_scalar(r["pka_new"]), "delta": json_scalar(r["delta"]),
                  "category_old": r["category_old"], "category_new": r["category_new"]}
                 for r in moved_rows.to_dict("records")
             ),
@@ -250,12 +239,13 @@ def format_diff(report: dict[str, Any]) -> list[str]:
         f"recommended: {len(r['added'])} added, {len(r['removed'])} removed, {len(r['moved'])} moved by "
         f"more than {report['threshold']} pK, {len(r['revised'])} revised within it",
     ]
-    lines += [f"  + {x['recommendation_id']} {x['name'] or x['compound_id']} step {x['step']} at {_fmt(x['temperature_k'])} K: "
-              f"pKa {_fmt(x['pka'])} {x['category']}" for x in r["added"]]
-    lines += [f"  - {x['recommendation_id']} {x['name'] or x['compound_id']} step {x['step']} at {_fmt(x['temperature_k'])} K: "
-              f"pKa {_fmt(x['pka'])} {x['category']}" for x in r["removed"]]
-    lines += [f"  > {x['recommendation_id']} {x['name'] or x['compound_id']} step {x['step']} at {_fmt(x['temperature_k'])} K: "
-              f"pKa {x['pka_old']:.3f} -> {x['pka_new']:.3f} ({x['delta']:+.3f}), "
+    def head(sign: str, x: dict) -> str:
+        return (f"  {sign} {x['recommendation_id']} {x['name'] or x['compound_id']} step {x['step']} "
+                f"at {_fmt(x['temperature_k'])} K: ")
+
+    lines += [head("+", x) + f"pKa {_fmt(x['pka'])} {x['category']}" for x in r["added"]]
+    lines += [head("-", x) + f"pKa {_fmt(x['pka'])} {x['category']}" for x in r["removed"]]
+    lines += [head(">", x) + f"pKa {x['pka_old']:.3f} -> {x['pka_new']:.3f} ({x['delta']:+.3f}), "
               f"{x['category_old']} -> {x['category_new']}" for x in r["moved"]]
     for x in r["revised"]:
         what = "; ".join(f"{c} {_fmt(a)} -> {_fmt(b)}" for c, (a, b) in x["changes"].items())

@@ -344,7 +344,7 @@ def pkw(temperature_k: ArrayLike, density_kg_m3: ArrayLike | None = None) -> Flo
     revision R11-24; its docstring still quotes the R11-07 value 13.906565 at
     300 K / 1000 kg/m3, but the code returns 13.906672, the R11-24 value).
     Evaluation happens once per unique input rather than through a numpy
-    transcription of the equation: the pipeline's columns hold few distinct
+    re-implementation of the equation: the pipeline's columns hold few distinct
     temperatures, and calling iapws keeps a single implementation of the
     release (no hand-copied coefficients to drift from it).
 
@@ -1353,9 +1353,7 @@ def pka_molar_to_molal(
     >>> round(float(pka_molar_to_molal(4.75728)), 5)
     4.756
     """
-    p = _as_float(pka_molar)
-    rho_kg_l = water_density(temperature_k) / 1000.0  # kg/m3 -> kg/L
-    return np.asarray(p + _as_float(delta_n) * np.log10(rho_kg_l), dtype=np.float64)
+    return pka_molal_to_molar(pka_molar, temperature_k, -_as_float(delta_n))
 
 
 #: Constant types stored by kaledger.

@@ -89,14 +89,14 @@ def _loads(text: str | None) -> Any:
     return json.loads(text) if text else None
 
 
-def _clean(value: Any) -> Any:
+def json_scalar(value: Any) -> Any:
     """Python scalars for JSON: NaN/NA -> None, numpy scalars -> int/float."""
     if value is None:
         return None
     if isinstance(value, float) and math.isnan(value):
         return None
     if hasattr(value, "item"):  # numpy scalar
-        return _clean(value.item())
+        return json_scalar(value.item())
     try:
         if pd.isna(value):
             return None
@@ -111,7 +111,7 @@ def _record(con: duckdb.DuckDBPyConnection, sql: str, params: list[Any]) -> dict
     if row is None:
         return None
     names = [d[0] for d in cursor.description]
-    return {n: _clean(v) for n, v in zip(names, row, strict=True)}
+    return {n: json_scalar(v) for n, v in zip(names, row, strict=True)}
 
 
 def _steps(con: duckdb.DuckDBPyConnection, target_id: str) -> list[dict[str, Any]]:
@@ -559,7 +559,7 @@ def _attrs(pairs: Mapping[str, Any]) -> dict[str, Any]:
     """PROV attributes without missing values, as plain Python scalars."""
     out: dict[str, Any] = {}
     for key, value in pairs.items():
-        value = _clean(value)
+        value = json_scalar(value)
         if value is not None:
             out[key] = value
     return out
@@ -634,7 +634,7 @@ def prov_document(db: Path | str) -> ProvDocument:
             }),
         )
         doc.used(activities["ingest"], files[f["file"]])
-        publisher = _clean(s.get("publisher"))
+        publisher = json_scalar(s.get("publisher"))
         if publisher:
             key = _slug(str(publisher))
             if key not in publishers:
@@ -921,7 +921,7 @@ def export_package(
     package_sources = []
     for s in kept.to_dict("records"):
         entry = {"title": s["title"]}
-        if _clean(s.get("url")):
+        if json_scalar(s.get("url")):
             entry["path"] = s["url"]
         lic = {"name": s["license"]}
         if _spdx_url(s["license"]):
@@ -929,7 +929,7 @@ def export_package(
         entry.update({"citation": s["citation"], "licenses": [lic], "kaledger:source_id": s["source_id"],
                       "kaledger:kind": s["kind"], "kaledger:file": s["file"],
                       "kaledger:file_sha256": s["file_sha256"]})
-        if _clean(s.get("retrieved")):
+        if json_scalar(s.get("retrieved")):
             entry["kaledger:retrieved"] = s["retrieved"]
         package_sources.append(entry)
     descriptor = {
