@@ -4,7 +4,9 @@ Input is the ingest stage's ``raw_cells`` (text only). Output is three tables:
 
 - ``measurements``: one row per accepted source row, in the published layout;
 - ``rejects``: one row per (source row, field) that could not be read, with a plain reason;
-- ``lineage``: the ordered steps from each source cell to the stored number.
+- ``cell_facts``: one row per measurement, the typed facts of its steps from the source cell
+  to the stored number (what was parsed, which defaults were used); :mod:`pipeline.lineage`
+  expands them into ``lineage`` rows.
 
 Every source row ends in exactly one of ``measurements`` or ``rejects`` (a rejected row may have
 several ``rejects`` rows, one per bad field). All work is column-wise; the physical chemistry is
@@ -19,22 +21,28 @@ from dataclasses import dataclass
 import duckdb
 import numpy as np
 import pandas as pd
+from pandas.api.types import union_categoricals
 
-from pipeline import identity, parse, physchem
-from pipeline.schemas.tables import LINEAGE, MEASUREMENTS, REJECTS
+from pipeline import identity, lineage, parse, physchem
+from pipeline.schemas.tables import CELL_FACTS, MEASUREMENTS, REJECTS
 
 CONSTANT_TYPES = ("thermodynamic", "concentration", "mixed")
 #: Release of the water-ionization formulation behind :func:`physchem.pkw` (iapws package).
-PKW_RELEASE = "IAPWS R11-24"
+PKW_RELEASE = physchem.PKW_RELEASE
 
 
 @dataclass(frozen=True)
 class NormalizeResult:
     measurements: pd.DataFrame
     rejects: pd.DataFrame
-    lineage: pd.DataFrame
+    cell_facts: pd.DataFrame  # one row per measurement (see pipeline.lineage)
     compounds: pd.DataFrame  # one row per compound_id, from identity resolution
     identity_findings: pd.DataFrame
+
+    @property
+    def lineage(self) -> pd.DataFrame:
+        """The measurements' lineage steps, expanded in memory (publish does it in the file)."""
+        return lineage.measurement_lineage(self.cell_facts, self.measurements)
 
 
 def make_value_ids(source_id: pd.Series, table_file: pd.Series, source_row: pd.Series) -> pd.Series:
@@ -46,8 +54,6 @@ def make_value_ids(source_id: pd.Series, table_file: pd.Series, source_row: pd.S
     The id depends only on where the value sits, so an unchanged source gives the same ids on
     every rebuild and an edited cell keeps its id (a diff then shows it as changed).
 
-    Examples
-    --------
     References
     ----------
     .. [1] NIST. Secure Hash Standard (SHS), FIPS PUB 180-4, 2015.
@@ -58,18 +64,23 @@ def make_value_ids(source_id: pd.Series, table_file: pd.Series, source_row: pd.S
     >>> make_value_ids(pd.Series(["demo"]), pd.Series(["t.csv"]), pd.Series([2])).iloc[0]
     'kv-2125e212d7f0c450'
     """
+    if source_id.empty:
+        return pd.Series([], index=source_id.index, dtype=object)
     keys = pd.DataFrame(
         {
-            "k": (source_id.astype(str) + "\x1f" + table_file.astype(str) + "\x1f"
-                  + source_row.astype(str)).astype(object)
+            "source_id": source_id.astype(object).to_numpy(),
+            "table_file": table_file.astype(object).to_numpy(),
+            "source_row": source_row.to_numpy(dtype="int64"),
         }
     )
-    if keys.empty:
-        return pd.Series([], index=source_id.index, dtype=object)
-    # DuckDB's sha256 (of the UTF-8 bytes, hex) is hashlib.sha256, column-wise and in C++
+    # DuckDB's sha256 (of the UTF-8 bytes, hex) is hashlib.sha256; the key is joined and
+    # hashed column-wise in C++ rather than as a million Python strings
     with duckdb.connect() as con:
         con.register("value_keys", keys)
-        ids = con.execute("SELECT 'kv-' || left(sha256(k), 16) FROM value_keys").fetchnumpy()
+        ids = con.execute(
+            "SELECT 'kv-' || left(sha256(concat_ws(chr(31), source_id, table_file, "
+            "source_row::VARCHAR)), 16) FROM value_keys"
+        ).fetchnumpy()
     return pd.Series(next(iter(ids.values())).astype(object), index=source_id.index, dtype=object)
 
 
@@ -194,7 +205,7 @@ class SourcePart:
 
     measurements: pd.DataFrame  # accepted rows, published layout; steps as given (not inferred)
     rejects: pd.DataFrame
-    lineage: pd.DataFrame
+    cell_facts: pd.DataFrame
     resolved: pd.DataFrame  # identity resolution of the accepted rows, row for row
 
 
@@ -204,7 +215,7 @@ def normalize(
     synonyms: pd.DataFrame | None = None,
     identity_cache: identity.IdentityCache | None = None,
 ) -> NormalizeResult:
-    """Normalize raw cells to measurements, rejects and lineage (see module docstring).
+    """Normalize raw cells to measurements, rejects and cell facts (see module docstring).
 
     Each source is normalized on its own (:func:`normalize_rows`), then the steps that look
     across sources (step inference, identity findings, the compounds table) run on the whole
@@ -226,7 +237,7 @@ def combine(parts: list[SourcePart]) -> NormalizeResult:
     measurements = pd.concat([p.measurements for p in parts], ignore_index=True)
     resolved = pd.concat([p.resolved for p in parts], ignore_index=True)
     rejects = pd.concat([p.rejects for p in parts], ignore_index=True)
-    lineage = pd.concat([p.lineage for p in parts], ignore_index=True)
+    cell_facts = concat_cell_facts([p.cell_facts for p in parts])
     filled = identity.infer_steps(measurements)
     measurements["step"] = filled["step"].astype("Int64")
     measurements["step_inferred"] = filled["step_inferred"].astype(bool)
@@ -236,7 +247,7 @@ def combine(parts: list[SourcePart]) -> NormalizeResult:
         rejects=REJECTS.validate(
             rejects.sort_values(["source_id", "source_row", "field"], kind="stable").reset_index(drop=True)
         ),
-        lineage=LINEAGE.validate(lineage),
+        cell_facts=cell_facts,
         compounds=_compound_table(resolved),
         identity_findings=identity.identity_findings(
             resolved, measurements["source_id"], measurements["value_id"]
@@ -250,7 +261,7 @@ def normalize_rows(
     synonyms: pd.DataFrame | None = None,
     identity_cache: identity.IdentityCache | None = None,
 ) -> SourcePart:
-    """Normalize rows on their own: parse, convert, resolve identity, record lineage.
+    """Normalize rows on their own: parse, convert, resolve identity, keep the cell facts.
 
     Works on any subset of rows (a build calls it once per source); see :func:`combine`.
     """
@@ -487,14 +498,14 @@ def normalize_rows(
             "status": "ok",
         }
     )[acc]
-    lineage = _measurement_lineage(
-        cells[acc], tables, value_id[acc], quantity_text[acc], q[acc], temp_text[acc], ionic_text[acc],
-        parsed[acc], pkw_used[acc], ionic_value[acc], molal[acc], units[acc], ctype[acc],
+    cell_facts = _cell_facts(
+        cells[acc], tables, value_id[acc], quantity_text[acc], temp_text[acc], ionic_text[acc],
+        parsed[acc], ionic_value[acc], units[acc],
     )
     return SourcePart(
         measurements=measurements.reset_index(drop=True),
         rejects=all_rejects.reset_index(drop=True),
-        lineage=lineage,
+        cell_facts=cell_facts,
         resolved=resolved[acc].reset_index(drop=True),
     )
 
@@ -521,135 +532,59 @@ def _compound_table(resolved: pd.DataFrame) -> pd.DataFrame:
     return table.reset_index()[cols]
 
 
-def _json_lines(frame: pd.DataFrame) -> list[str]:
-    """Each row of ``frame`` as one JSON object (pandas' vectorized writer; NaN -> null)."""
-    if frame.empty:
-        return []
-    return frame.to_json(orient="records", lines=True, force_ascii=False).rstrip("\n").split("\n")
-
-
-def _measurement_lineage(
+def _cell_facts(
     cells: pd.DataFrame,
     tables: pd.DataFrame,
     value_id: pd.Series,
     quantity_text: pd.DataFrame,
-    quantity: pd.Series,
     temp_text: pd.DataFrame,
     ionic_text: pd.DataFrame,
     parsed: pd.DataFrame,
-    pkw_used: pd.Series,
     ionic_value: pd.Series,
-    molal: pd.Series,
     units: pd.Series,
-    ctype: pd.Series,
 ) -> pd.DataFrame:
-    """Lineage steps of each accepted measurement, oldest first (the source cell is step 1)."""
+    """The typed facts behind each accepted measurement's lineage steps (see :mod:`lineage`)."""
     t = tables.set_index(["source_id", "table_file"])
     key = pd.MultiIndex.from_frame(cells[["source_id", "table_file"]])
-    sha = t["file_sha256"].reindex(key).to_numpy()
-    header = t["columns"].map(lambda c: c.get("value")).reindex(key).to_numpy()
-    location = cells["source_id"] + "/" + cells["table_file"] + "#row=" + cells["source_row"].astype(str)
-    inputs_cell = '["' + location.str.replace('"', '\\"', regex=False) + '"]'
-    steps: list[pd.DataFrame] = []
-    taken = np.zeros(len(cells), dtype=np.int64)  # steps recorded so far, per measurement
 
-    def add(order: int, operation: str, params: pd.DataFrame, inputs: pd.Series) -> None:
-        # called in step order, so a row's step number is one more than its steps so far
-        if params.empty:
-            return
-        rows = cells.index.get_indexer(params.index)
-        taken[rows] += 1
-        steps.append(
-            pd.DataFrame(
-                {
-                    "target_id": value_id[params.index],
-                    "step_no": taken[rows],
-                    "operation": operation,
-                    "parameters": _json_lines(params),
-                    "inputs": inputs[params.index],
-                }
-            )
-        )
+    def category(values: pd.Series | np.ndarray) -> pd.Categorical:
+        return _text_categorical(pd.Categorical(np.asarray(values, dtype=object)))
 
-    add(
-        1,
-        "read_cell",
-        pd.DataFrame(
-            {
-                "file": cells["source_id"] + "/" + cells["table_file"],
-                "sha256": sha,
-                "row": cells["source_row"],
-                "column": header,
-                "text": cells["value"],
-            },
-            index=cells.index,
-        ),
-        inputs_cell,
-    )
-    defaulted = pd.DataFrame(
+    def defaulted(frame: pd.DataFrame) -> pd.Categorical:
+        return category(frame["text"].where(frame["from_default"]))
+
+    facts = pd.DataFrame(
         {
-            "quantity": quantity_text["text"].where(quantity_text["from_default"]),
-            "temperature": temp_text["text"].where(temp_text["from_default"]),
-            "ionic_strength": ionic_text["text"].where(ionic_text["from_default"]),
-        },
-        index=cells.index,
+            "value_id": value_id.to_numpy(dtype=object),
+            "file": category(cells["source_id"] + "/" + cells["table_file"]),
+            "file_sha256": category(t["file_sha256"].reindex(key)),
+            "value_header": category(t["columns"].map(lambda c: c.get("value")).reindex(key)),
+            "quantity_text": category(quantity_text["text"]),
+            "quantity_default": defaulted(quantity_text),
+            "temperature_default": defaulted(temp_text),
+            "ionic_strength_default": defaulted(ionic_text),
+            "value_parsed": parsed["value"].to_numpy(dtype=float),
+            "uncertainty_parsed": parsed["uncertainty"].to_numpy(dtype=float),
+            "qualifier_parsed": category(parsed["qualifier"]),
+            "ionic_strength_given": ionic_value.to_numpy(dtype=float),
+            "ionic_strength_was_molar": (units.eq("mol/L") & ionic_value.gt(0)).to_numpy(dtype=bool),
+        }
     )
-    any_default = defaulted.notna().any(axis=1)
-    add(2, "apply_descriptor_defaults", defaulted[any_default], inputs_cell)
-    add(
-        3,
-        "parse_value",
-        pd.DataFrame(
-            {
-                "quantity": quantity_text["text"],
-                "value": parsed["value"],
-                "uncertainty": parsed["uncertainty"],
-                "qualifier": parsed["qualifier"],
-            },
-            index=cells.index,
-        ),
-        inputs_cell,
-    )
-    own = '["' + value_id + '"]'
-    molar = units.eq("mol/L") & ionic_value.gt(0)
-    add(
-        4,
-        "ionic_strength_to_molal",
-        pd.DataFrame(
-            {
-                "from_mol_per_l": ionic_value,
-                "to_mol_per_kg": molal,
-                "method": "dilute aqueous solution: b = c / rho_w(T), rho_w from IAPWS-95",
-            },
-            index=cells.index,
-        )[molar],
-        own,
-    )
-    is_k = quantity.isin(["Ka", "Kb"])
-    add(
-        5,
-        "k_to_pk",
-        pd.DataFrame({"formula": "pK = -log10(K)"}, index=cells.index)[is_k],
-        own,
-    )
-    base = pkw_used.notna()
-    add(
-        6,
-        "pkb_to_pka",
-        pd.DataFrame(
-            {
-                "formula": "pKa = pKw - pKb",
-                "pkw": pkw_used,
-                "pkw_release": PKW_RELEASE,
-                "constant_type": ctype,
-                "ionic_strength_molal": molal,
-            },
-            index=cells.index,
-        )[base],
-        own,
-    )
-    columns = ["target_id", "step_no", "operation", "parameters", "inputs"]
-    if not steps:
-        return pd.DataFrame({c: pd.Series(dtype="int64" if c == "step_no" else object) for c in columns})
-    # rows grouped by step, measurements in source order within a step (consolidate sorts)
-    return pd.concat(steps, ignore_index=True)[columns]
+    return CELL_FACTS.validate(facts)
+
+
+def _text_categorical(values: pd.Categorical | pd.Series) -> pd.Categorical:
+    """The same categorical with object-dtype categories (so that any two can be joined)."""
+    values = pd.Categorical(values)
+    return pd.Categorical.from_codes(values.codes, categories=pd.Index(values.categories, dtype=object))
+
+
+def concat_cell_facts(parts: list[pd.DataFrame]) -> pd.DataFrame:
+    """Join cell-fact frames, keeping the text facts categorical (plain concat would not)."""
+    if not parts:
+        return CELL_FACTS.validate(pd.DataFrame({c: pd.Series(dtype=str(s.dtype)) for c, s in CELL_FACTS.columns.items()}))
+    joined = pd.concat(parts, ignore_index=True)
+    for column, spec in CELL_FACTS.columns.items():
+        if str(spec.dtype) == "category":
+            joined[column] = union_categoricals([_text_categorical(p[column]) for p in parts])
+    return joined

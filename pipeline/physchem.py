@@ -98,6 +98,8 @@ P_MIN_MPA = 0.001
 P_MAX_MPA = 100.0
 #: Range of IAPWS R11-24 as implemented by iapws when a density is given.
 KW_T_RANGE_K = (273.15, 1073.15)
+#: The water-ionization release :func:`pkw` implements (through the iapws package).
+PKW_RELEASE = "IAPWS R11-24"
 KW_RHO_RANGE = (0.0, 1250.0)
 #: Range of IAPWS R8-97 (238-873 K) when a density is given.
 EPS_T_RANGE_K = (238.0, 873.15)

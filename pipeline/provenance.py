@@ -69,6 +69,7 @@ import license_expression
 import pandas as pd
 from prov.model import ProvDocument
 
+from pipeline import lineage as lineage_module
 from pipeline.publish import TABLE_ORDER, open_database
 from pipeline.schemas import published_ddl
 
@@ -441,19 +442,27 @@ def _sha256_file(path: Path) -> str:
     return hashlib.sha256(path.read_bytes()).hexdigest()
 
 
-def source_files(sources: pd.DataFrame, lineage: pd.DataFrame) -> pd.DataFrame:
+def source_files(
+    sources: pd.DataFrame, lineage: pd.DataFrame | None = None, cell_facts: pd.DataFrame | None = None
+) -> pd.DataFrame:
     """One row per data file of each source: ``source_id, file, sha256``.
 
     ``sources.file`` lists a source's files joined by ';' (several tables in one source); a
-    single file's hash is ``sources.file_sha256``, several files' hashes come from the lineage's
-    ``read_cell`` steps (None for a file none of whose rows was accepted).
+    single file's hash is ``sources.file_sha256``, several files' hashes come from normalize's
+    ``cell_facts`` when given, else from the lineage's ``read_cell`` steps (None for a file
+    none of whose rows was accepted).
     """
     files = sources[["source_id", "file", "file_sha256"]].assign(file=sources["file"].str.split(";"))
     single = files["file"].str.len() == 1
     files = files.explode("file", ignore_index=True)
     files["single"] = files["source_id"].map(dict(zip(sources["source_id"], single, strict=True)))
     read_sha = pd.Series(dtype=object)
-    cells = lineage.loc[lineage["operation"] == "read_cell", "parameters"] if not single.all() else None
+    if cell_facts is not None and not single.all():
+        pairs = cell_facts[["file", "file_sha256"]].drop_duplicates("file")
+        read_sha = pd.Series(pairs["file_sha256"].astype(object).to_numpy(), index=pairs["file"].astype(object))
+    cells = None
+    if cell_facts is None and lineage is not None and not single.all():
+        cells = lineage.loc[lineage["operation"] == "read_cell", "parameters"]
     if cells is not None and len(cells):
         # the read_cell JSON starts {"file":...,"sha256":...}; a regex over the text avoids
         # decoding a million JSON objects just to list a few file hashes
@@ -474,7 +483,9 @@ def build_manifest(
     Parameters
     ----------
     tables : the tables about to be published (``sources``, ``measurements``, ``rejects``,
-        ``findings``, ``recommended``, ``lineage``, ``compounds``)
+        ``findings``, ``recommended``, ``lineage``, ``compounds``); with normalize's
+        ``cell_facts`` too, ``lineage`` holds only the steps after the measurements' own
+        (which publish expands from the facts)
     raw_dir : the folder of source folders (for the descriptors and ``synonyms.csv``)
     config_path : the project config given to the build, if any
 
@@ -488,7 +499,8 @@ def build_manifest(
     """
     raw_dir = Path(raw_dir)
     sources = tables["sources"]
-    files = source_files(sources, tables["lineage"])
+    facts = tables.get("cell_facts")
+    files = source_files(sources, tables["lineage"], facts)
     missing = files["sha256"].isna()
     files.loc[missing, "sha256"] = files.loc[missing, "file"].map(lambda f: _sha256_file(raw_dir / f))
     inputs = dict(zip(files["file"], files["sha256"], strict=True))
@@ -504,6 +516,9 @@ def build_manifest(
     m, rejects, findings = tables["measurements"], tables["rejects"], tables["findings"]
     rec, lineage = tables["recommended"], tables["lineage"]
     is_rec = lineage["operation"].isin(["consensus", "recognised_as_copy"])  # added by consolidate
+    cell_steps = int((~is_rec).sum())
+    if facts is not None:
+        cell_steps += int(lineage_module.step_counts(facts, m).sum())
     stage_counts = {
         "ingest": {"sources": len(sources), "rows_read": int(sources["row_count"].sum())},
         "normalize": {
@@ -511,7 +526,7 @@ def build_manifest(
             "rejected_rows": int(rejects[["source_id", "source_row"]].drop_duplicates().shape[0]),
             "rejected_cells": len(rejects),
             "compounds": len(tables["compounds"]),
-            "lineage_steps": int((~is_rec).sum()),
+            "lineage_steps": cell_steps,
         },
         "validate": {
             "findings": len(findings),
@@ -525,7 +540,10 @@ def build_manifest(
             "by_category": {k: int(v) for k, v in rec["category"].value_counts().sort_index().items()},
             "lineage_steps": int(is_rec.sum()),
         },
-        "publish": {"tables": {name: len(tables[name]) for name in TABLE_ORDER if name in tables}},
+        "publish": {"tables": {
+            name: cell_steps + int(is_rec.sum()) if name == "lineage" else len(tables[name])
+            for name in TABLE_ORDER if name in tables
+        }},
     }
     libraries = {"python": platform.python_version()}
     for name in _LIBRARIES:

@@ -17,6 +17,7 @@ from pathlib import Path
 import duckdb
 import pandas as pd
 
+from pipeline import lineage
 from pipeline.schemas import published_ddl
 
 TABLE_ORDER = (
@@ -54,16 +55,24 @@ def build_lock(out_path: Path) -> Iterator[None]:
             fcntl.flock(handle, fcntl.LOCK_UN)
 
 
-def publish(tables: Mapping[str, pd.DataFrame], out_path: Path | str) -> Path:
+def publish(
+    tables: Mapping[str, pd.DataFrame], out_path: Path | str, cell_facts: pd.DataFrame | None = None
+) -> Path:
     """Write ``tables`` to the DuckDB file ``out_path`` atomically; return its path.
 
     ``tables`` must hold every table of the published DDL (``schemas/kaledger.sql``); columns
-    are matched by name.
+    are matched by name. With ``cell_facts`` (normalize's, one row per measurement), the
+    measurements' own lineage steps are expanded from them inside the file
+    (:func:`pipeline.lineage.cell_steps_sql`) and written with ``tables["lineage"]`` (then the
+    later steps only, e.g. consolidate's), all ordered by target and step.
     """
     out_path = Path(out_path)
     missing = [t for t in TABLE_ORDER if t not in tables]
     if missing:
         raise PublishError(f"cannot publish: table {missing[0]!r} was not built")
+    expected = {name: len(frame) for name, frame in tables.items()}
+    if cell_facts is not None:
+        expected["lineage"] += int(lineage.step_counts(cell_facts, tables["measurements"]).sum())
     out_path.parent.mkdir(parents=True, exist_ok=True)
     tmp = out_path.with_name(f".{out_path.name}.tmp-{os.getpid()}")
     tmp.unlink(missing_ok=True)
@@ -72,11 +81,16 @@ def publish(tables: Mapping[str, pd.DataFrame], out_path: Path | str) -> Path:
         try:
             con.execute(published_ddl())
             for name in TABLE_ORDER:
-                frame = tables[name]
-                con.register("incoming", frame)
+                con.register("incoming", tables[name])
                 columns = [r[0] for r in con.execute(f"DESCRIBE {name}").fetchall()]
                 select = ", ".join(f'"{c}"' for c in columns)
-                con.execute(f"INSERT INTO {name} ({select}) SELECT {select} FROM incoming")
+                rows = f"SELECT {select} FROM incoming"
+                if name == "lineage":
+                    if cell_facts is not None:
+                        con.register("cell_facts", cell_facts)
+                        rows = f"{lineage.cell_steps_sql('cell_facts', 'measurements')} UNION ALL {rows}"
+                    rows = f"SELECT * FROM ({rows}) ORDER BY target_id, step_no"
+                con.execute(f"INSERT INTO {name} ({select}) {rows}")
                 con.unregister("incoming")
             con.execute("CHECKPOINT")
         finally:
@@ -85,9 +99,9 @@ def publish(tables: Mapping[str, pd.DataFrame], out_path: Path | str) -> Path:
         try:
             for name in TABLE_ORDER:
                 (count,) = check.execute(f"SELECT count(*) FROM {name}").fetchone()
-                if count != len(tables[name]):
+                if count != expected[name]:
                     raise PublishError(
-                        f"verification failed: table {name} holds {count} rows, expected {len(tables[name])}"
+                        f"verification failed: table {name} holds {count} rows, expected {expected[name]}"
                     )
         finally:
             check.close()

@@ -35,7 +35,7 @@ from pipeline.ingest import IngestResult
 from pipeline.normalize import NormalizeResult, SourcePart
 from pipeline.schemas.tables import SOURCE_FILES
 
-FORMAT = "1"  # bump when the layout of an entry changes
+FORMAT = "2"  # bump when the layout of an entry changes
 #: Modules whose code shapes a source's ingest and normalize output (their text is hashed).
 _STAGE_MODULES = (
     "descriptor.py",
@@ -46,7 +46,7 @@ _STAGE_MODULES = (
     "identity.py",
     "schemas/tables.py",
 )
-_FRAMES = ("measurements", "rejects", "lineage", "resolved")
+_FRAMES = ("measurements", "rejects", "cell_facts", "resolved")
 
 
 def code_fingerprint(package_version: str) -> str:

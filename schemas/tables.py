@@ -171,3 +171,27 @@ LINEAGE = pa.DataFrameSchema(
     unique=["target_id", "step_no"],
     name="lineage",
 )
+
+# One row per accepted measurement: the typed facts its lineage steps record (see
+# pipeline/lineage.py, which expands them into ``lineage`` rows). Text facts that repeat
+# within a table (file, hash, header, defaults, quantity text) are categorical.
+CELL_FACTS = pa.DataFrameSchema(
+    {
+        "value_id": _text(False),
+        "file": pa.Column("category"),  # <source id>/<table file>
+        "file_sha256": pa.Column("category"),
+        "value_header": pa.Column("category", nullable=True),  # the value column's header
+        "quantity_text": pa.Column("category", nullable=True),  # as given or defaulted
+        "quantity_default": pa.Column("category", nullable=True),  # set when from [defaults]
+        "temperature_default": pa.Column("category", nullable=True),
+        "ionic_strength_default": pa.Column("category", nullable=True),
+        "value_parsed": pa.Column("float64", nullable=True),  # before any conversion
+        "uncertainty_parsed": pa.Column("float64", nullable=True),
+        "qualifier_parsed": pa.Column("category", nullable=True),
+        "ionic_strength_given": pa.Column("float64", nullable=True),  # before molar -> molal
+        "ionic_strength_was_molar": pa.Column("bool"),
+    },
+    strict=True,
+    ordered=True,
+    name="cell_facts",
+)
