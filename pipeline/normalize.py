@@ -85,10 +85,13 @@ def make_value_ids(source_id: pd.Series, table_file: pd.Series, source_row: pd.S
 
 
 def _blank(text: pd.Series) -> pd.Series:
+    """True where a cell is missing or only whitespace (stripped once per distinct text)."""
     missing = text.isna()
     if missing.all():
         return missing
-    return missing | text.where(~missing, "").str.strip().eq("")
+    codes, uniques = pd.factorize(text)  # missing cells get code -1
+    blank = pd.Series(uniques, dtype=object).str.strip().eq("").to_numpy(dtype=bool)
+    return pd.Series(np.where(codes < 0, True, blank[codes]), index=text.index)
 
 
 def _with_defaults(cells: pd.DataFrame, tables: pd.DataFrame, field: str) -> pd.DataFrame:
@@ -178,19 +181,26 @@ def _by_decimal(
     return pd.concat(parts).reindex(text.index)
 
 
+#: A reject's reason: one text, one per row, or a function of the rejected rows' mask that
+#: gives theirs (so a message quoting the cell is built for the few bad rows, not for all).
+Reason = str | pd.Series | Callable[[pd.Series], pd.Series]
+
+
 def _rejects_for(
-    frame: pd.DataFrame, mask: pd.Series, field: str, raw: pd.Series, reason: pd.Series | str
+    frame: pd.DataFrame, mask: pd.Series, field: str, raw: pd.Series, reason: Reason
 ) -> pd.DataFrame:
-    if isinstance(reason, str):
-        reason = pd.Series(reason, index=frame.index)
     picked = mask.fillna(False).astype(bool)
+    if callable(reason):
+        reason = reason(picked)
+    elif isinstance(reason, pd.Series):
+        reason = reason[picked]
     return pd.DataFrame(
         {
             "source_id": frame.loc[picked, "source_id"],
             "source_row": frame.loc[picked, "source_row"],
             "field": field,
             "raw_text": raw[picked],
-            "reason": reason[picked],
+            "reason": reason,
         }
     )
 
@@ -268,7 +278,7 @@ def normalize_rows(
     cells = raw_cells.reset_index(drop=True)
     rejects: list[pd.DataFrame] = []
 
-    def reject(mask: pd.Series, field: str, raw: pd.Series, reason: pd.Series | str) -> None:
+    def reject(mask: pd.Series, field: str, raw: pd.Series, reason: Reason) -> None:
         rejects.append(_rejects_for(cells, mask, field, raw, reason))
 
     # 0. rows the reader could not split cleanly
@@ -354,7 +364,8 @@ def normalize_rows(
         bad_ctype,
         "constant_type",
         ctype_text["text"],
-        "constant type '" + ctype_text["text"].astype(str) + "' is not one of " + ", ".join(CONSTANT_TYPES),
+        lambda rows: "constant type '" + ctype_text["text"][rows].astype(str) + "' is not one of "
+        + ", ".join(CONSTANT_TYPES),
     )
 
     # 8. step and charge (whole numbers)
@@ -362,7 +373,8 @@ def normalize_rows(
     step_given = ~_blank(step_text["text"])
     step_num = pd.to_numeric(step_text["text"].astype(str).str.strip().str.lstrip("pPkKaA "), errors="coerce")
     bad_step = step_given & ~(step_num.notna() & (step_num == step_num.round()) & (step_num >= 1))
-    reject(bad_step, "step", step_text["text"], "step '" + step_text["text"].astype(str) + "' is not a whole number from 1")
+    reject(bad_step, "step", step_text["text"],
+           lambda rows: "step '" + step_text["text"][rows].astype(str) + "' is not a whole number from 1")
     step = pd.array(step_num.where(step_given & ~bad_step), dtype="Float64").round().astype("Int64")
     step = pd.Series(step, index=cells.index).fillna(quantity["step"].astype("Int64"))
 
@@ -370,7 +382,8 @@ def normalize_rows(
     charge_given = ~_blank(charge_text["text"])
     charge_num = pd.to_numeric(charge_text["text"].astype(str).str.strip().str.replace("+", "", regex=False), errors="coerce")
     bad_charge = charge_given & ~(charge_num.notna() & (charge_num == charge_num.round()))
-    reject(bad_charge, "charge", charge_text["text"], "charge '" + charge_text["text"].astype(str) + "' is not a whole number")
+    reject(bad_charge, "charge", charge_text["text"],
+           lambda rows: "charge '" + charge_text["text"][rows].astype(str) + "' is not a whole number")
     charge = pd.Series(pd.array(charge_num.where(charge_given & ~bad_charge), dtype="Float64").round().astype("Int64"), index=cells.index)
 
     # 9. identity of the compound
@@ -386,7 +399,8 @@ def normalize_rows(
     q = quantity["quantity"]
     x = parsed["value"]
     is_k = q.isin(["Ka", "Kb"])
-    reject(is_k & x.le(0), "value", value_text, q + " '" + value_text.astype(str) + "' must be a positive number")
+    reject(is_k & x.le(0), "value", value_text,
+           lambda rows: q[rows] + " '" + value_text[rows].astype(str) + "' must be a positive number")
     p_value = _to_pk(x, is_k)
     with np.errstate(divide="ignore", invalid="ignore"):
         # u(pK) = u(K) / (K ln 10), first-order propagation (GUM, JCGM 100:2008, eq. 10)
@@ -419,7 +433,8 @@ def normalize_rows(
             if mask.any():
                 vals, errs = _on_rows(mask, func, temperature_k, molal)
                 pkw_used[mask] = vals[mask]
-                reject(errs.notna(), "temperature", temp_text["text"], "cannot convert " + q + " to pKa: " + errs.astype(str))
+                reject(errs.notna(), "temperature", temp_text["text"],
+                       lambda rows, errs=errs: "cannot convert " + q[rows] + " to pKa: " + errs[rows].astype(str))
     pka = pd.Series(np.where(is_base, pkw_used - p_value, p_value), index=cells.index)
 
     # 10b. a second cell giving the same constant as another quantity (e.g. Ka beside pKa):
@@ -439,14 +454,16 @@ def normalize_rows(
         alt_is_base = alt_quantity.isin(["pKb", "Kb"])
         other_side = alt_given & alt_quantity.notna() & (alt_is_base != is_base)
         reject(other_side, "quantity_alt", alt_q_text,
-               "quantity_alt '" + alt_q_text.astype(str) + "' is the other side of the pair from quantity '"
-               + q.astype(str) + "'; value_alt must report the same constant")
+               lambda rows: "quantity_alt '" + alt_q_text[rows].astype(str)
+               + "' is the other side of the pair from quantity '" + q[rows].astype(str)
+               + "'; value_alt must report the same constant")
         alt = parse.parse_values(alt_text.where(alt_given, ""))
         reject(alt_given & alt["error"].notna(), "value_alt", alt_text, alt["error"])
         alt_value = alt["value"].astype(float)
         alt_is_k = alt_quantity.isin(["Ka", "Kb"])
         reject(alt_given & alt_is_k & alt_value.le(0), "value_alt", alt_text,
-               alt_quantity.astype(str) + " '" + alt_text.astype(str) + "' must be a positive number")
+               lambda rows: alt_quantity[rows].astype(str) + " '" + alt_text[rows].astype(str)
+               + "' must be a positive number")
         p_alt = _to_pk(alt_value, alt_is_k)
         pka_alt = pd.Series(np.where(is_base, pkw_used - p_alt, p_alt), index=cells.index).where(alt_given)
 
@@ -544,8 +561,13 @@ def _cell_facts(
     units: pd.Series,
 ) -> pd.DataFrame:
     """The typed facts behind each accepted measurement's lineage steps (see :mod:`lineage`)."""
-    t = tables.set_index(["source_id", "table_file"])
-    key = pd.MultiIndex.from_frame(cells[["source_id", "table_file"]])
+    # the table facts are looked up once per table and broadcast by the rows' table codes
+    table_codes, table_keys = pd.MultiIndex.from_frame(cells[["source_id", "table_file"]]).factorize()
+    t = tables.set_index(["source_id", "table_file"]).reindex(table_keys)
+
+    def per_table(values: list[object]) -> pd.Categorical:  # one value per table -> per row
+        codes, uniques = pd.factorize(np.asarray(values, dtype=object))  # None gets code -1
+        return pd.Categorical.from_codes(codes[table_codes], categories=pd.Index(uniques, dtype=object))
 
     def category(values: pd.Series | np.ndarray) -> pd.Categorical:
         return _text_categorical(pd.Categorical(np.asarray(values, dtype=object)))
@@ -556,9 +578,9 @@ def _cell_facts(
     facts = pd.DataFrame(
         {
             "value_id": value_id.to_numpy(dtype=object),
-            "file": category(cells["source_id"] + "/" + cells["table_file"]),
-            "file_sha256": category(t["file_sha256"].reindex(key)),
-            "value_header": category(t["columns"].map(lambda c: c.get("value")).reindex(key)),
+            "file": per_table([f"{s}/{f}" for s, f in table_keys]),
+            "file_sha256": per_table(list(t["file_sha256"])),
+            "value_header": per_table([c.get("value") for c in t["columns"]]),
             "quantity_text": category(quantity_text["text"]),
             "quantity_default": defaulted(quantity_text),
             "temperature_default": defaulted(temp_text),
