@@ -151,11 +151,15 @@ def _read_delimited(text: str, delimiter: str, skip_rows: int, path: Path = Path
     def record(line: int) -> list[str]:
         return quoted_records[quoted_rank[line]] if has_quote[line] else lines[line].split(delimiter)
 
-    # a blank line has a blank first cell: cheap to test on the first character, or on the
-    # first cell of a quoted line, before the whole line is looked at
-    first_char = _each(operator.getitem, lines, object, slice(0, 1))
-    maybe_blank = (first_char == "") | (first_char == delimiter)
-    maybe_blank |= _each(str.isspace, first_char.tolist(), bool)
+    # which lines can be blank is cheap to tell: a line without quotes only if its first and
+    # last characters are delimiters or white space, a quoted line only if its first cell is
+    def blank_or_delimiter(chars: np.ndarray) -> np.ndarray:
+        return (chars == "") | (chars == delimiter) | _each(str.isspace, chars.tolist(), bool)
+
+    maybe_blank = blank_or_delimiter(_each(operator.getitem, lines, object, slice(0, 1)))
+    candidates = np.flatnonzero(maybe_blank)
+    last_chars = _each(operator.getitem, [lines[i] for i in candidates], object, slice(-1, None))
+    maybe_blank[candidates] = blank_or_delimiter(last_chars)
     maybe_blank[quoted] = [not (r and r[0].strip()) for r in quoted_records]
     blank = np.zeros(n_lines, dtype=bool)
     for i in np.flatnonzero(maybe_blank):  # a line without quotes is blank when it holds only
@@ -393,8 +397,8 @@ def read_table(source: SourceDescriptor, table: TableSpec) -> tuple[pd.DataFrame
             cells[field] = np.full(n_rows, None, dtype=object)
             continue
         index = position[table.columns[field]]
-        if not len(other):
-            cells[field] = rows.plain_cells[:, index].copy()
+        if not len(other):  # a view: pandas copies it into a text array of its own
+            cells[field] = rows.plain_cells[:, index]
         elif not len(plain):
             cells[field] = other_columns[index]
         else:
