@@ -88,7 +88,7 @@ def _is_blank(record: list[str]) -> bool:
     return not any(cell.strip() for cell in record)
 
 
-@dataclass
+@dataclass(frozen=True)
 class _Rows:
     """The data rows of one table split into cells, in file order.
 
@@ -161,9 +161,10 @@ def _read_delimited(text: str, delimiter: str, skip_rows: int, path: Path = Path
     last_chars = _each(operator.getitem, [lines[i] for i in candidates], object, slice(-1, None))
     maybe_blank[candidates] = blank_or_delimiter(last_chars)
     maybe_blank[quoted] = [not (r and r[0].strip()) for r in quoted_records]
+    # a line without quotes is blank when it holds only delimiters and white space: the same
+    # as all of its cells being blank
     blank = np.zeros(n_lines, dtype=bool)
-    for i in np.flatnonzero(maybe_blank):  # a line without quotes is blank when it holds only
-        # delimiters and white space: the same as all of its cells being blank
+    for i in np.flatnonzero(maybe_blank):
         blank[i] = _is_blank(quoted_records[quoted_rank[i]]) if has_quote[i] else (
             not lines[i].replace(delimiter, "").strip()
         )
@@ -226,7 +227,10 @@ def _read_delimited_stream(
     header = [cell.strip() for cell in records[position]]
     data, starts, sizes = records[position + 1 :], starts[position + 1 :], sizes[position + 1 :]
     open_row = int(starts[open_quote - position - 1]) if open_quote is not None and open_quote > position else None
-    keep = np.array([not _is_blank(r) for r in data], dtype=bool)  # blank records are no data
+    # blank records are not data rows; a blank record has a blank first cell (cheap filter)
+    keep = np.ones(len(data), dtype=bool)
+    maybe_blank = [i for i, r in enumerate(data) if not (r and r[0].strip())]
+    keep[maybe_blank] = [not _is_blank(data[i]) for i in maybe_blank]
     if not keep.all():
         data = [r for r, k in zip(data, keep, strict=True) if k]
         starts, sizes = starts[keep], sizes[keep]
