@@ -12,8 +12,9 @@ import csv
 import hashlib
 import io
 import itertools
+import operator
 import re
-from collections.abc import Iterable
+from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -87,64 +88,161 @@ def _is_blank(record: list[str]) -> bool:
     return not any(cell.strip() for cell in record)
 
 
-def _read_delimited(
-    text: str, delimiter: str, skip_rows: int, path: Path = Path("<text>")
-) -> tuple[list[str], list[list[str]], np.ndarray, np.ndarray, int | None]:
-    """Split delimited text; return header, records, the file line each record starts on,
-    for each record an upper bound of its longest cell (characters), and the line of a record
-    whose quoted cell is never closed (it runs to the end of the file), else None.
+@dataclass(frozen=True)
+class _Rows:
+    """The data rows of one table split into cells, in file order.
 
-    Fast path: the text is tokenized line by line by the ``csv`` module in one C call; when
-    that gives exactly one record per physical line (no quoted cell spans a line end) record
-    ``i`` starts on line ``i + 1``. Otherwise the text is read again as one stream and each
-    record's first line is taken from the reader's line counter (same tokenizer, same cells).
+    A *plain* row (no quote character, one cell per header column, no long line, no U+FFFD)
+    cannot carry a row error and splits exactly as the ``csv`` reader would split it, so all
+    plain rows are cut out of the text by one ``str.split`` into a grid of cells. Only the
+    other rows are kept as ``csv`` records, one list each, and checked one by one.
+    """
+
+    header: list[str]
+    starts: np.ndarray  # the file line (sheet row) each data row starts on
+    plain: np.ndarray  # bool per data row: its cells are a row of plain_cells
+    plain_cells: np.ndarray  # object array (plain rows, header width)
+    other_records: list[list[str]]  # the cells of the rows that are not plain
+    other_sizes: np.ndarray  # per other record, an upper bound of its longest cell [characters]
+    open_row: int | None = None  # line of a quoted cell that is never closed (last row)
+
+    @classmethod
+    def from_records(
+        cls, header: list[str], records: list[list[str]], starts: np.ndarray, sizes: np.ndarray,
+        open_row: int | None = None,
+    ) -> _Rows:
+        """Rows that are all kept as records (a workbook, a cell spanning lines)."""
+        return cls(
+            header, starts, np.zeros(len(records), dtype=bool),
+            np.empty((0, len(header)), dtype=object), records, sizes, open_row,
+        )
+
+
+_NO_ROWS = _Rows.from_records([], [], np.empty(0, dtype=np.int64), np.empty(0, dtype=np.int64))
+
+
+def _each(function: Callable[..., object], lines: list[str], dtype: type, *args: object) -> np.ndarray:
+    """``function(line, *args)`` for every line as an array, looped in C by ``map``."""
+    arguments = [itertools.repeat(a) for a in args]
+    return np.fromiter(map(function, lines, *arguments), dtype=dtype, count=len(lines))
+
+
+def _read_delimited(text: str, delimiter: str, skip_rows: int, path: Path = Path("<text>")) -> _Rows:
+    """Split delimited text into a header and data rows numbered by the file line they start on.
+
+    When no quoted cell spans a line end, record ``i`` is physical line ``i + 1``: the lines
+    holding a quote character are tokenized by the ``csv`` module (one C call) and the others
+    are split on the delimiter, which is all the ``csv`` reader does with a line without
+    quotes. Otherwise the text is read as one stream by :func:`_read_delimited_stream`.
     """
     lines = _split_lines(text)
-    records = _tokenize(lines, delimiter, path)
-    open_quote: int | None = None  # index of a record whose quoted cell never closes
-    if len(records) == len(lines):
-        starts = np.arange(1, len(records) + 1, dtype=np.int64)
-        sizes = np.fromiter(map(len, lines), dtype=np.int64, count=len(lines))
-        if lines and '"' in lines[-1] and _quote_left_open(lines[-1:], delimiter):
-            open_quote = len(records) - 1
-    else:  # a quoted cell spans lines: number records by the line they start on
-        reader = csv.reader(io.StringIO(text, newline=""), delimiter=delimiter, strict=False)
-        records, first = [], []
-        previous_end = 0
-        try:
-            for record in reader:
-                records.append(record)
-                first.append(previous_end + 1)
-                previous_end = reader.line_num
-        except csv.Error as exc:
-            raise IngestError(
-                f"{path}: cannot be split into {delimiter!r}-separated cells ({exc})"
-            ) from None
-        starts = np.asarray(first, dtype=np.int64)
-        sizes = np.fromiter((max(map(len, r), default=0) for r in records), np.int64, len(records))
-        if records and _quote_left_open(lines[starts[-1] - 1 :], delimiter):
-            open_quote = len(records) - 1
+    n_lines = len(lines)
+    has_quote = _each(operator.contains, lines, bool, '"')
+    quoted = np.flatnonzero(has_quote)
+    quoted_records = _tokenize([lines[i] for i in quoted], delimiter, path)
+    # one record per quoted line, unless a quote is still open at the end of a line (the
+    # lenient reader then reads on into the next line); the file's last line may stay open
+    if len(quoted_records) != len(quoted) or (
+        len(quoted) and quoted[-1] != n_lines - 1 and _ends_inside_quotes(lines[quoted[-1]], delimiter)
+    ):
+        return _read_delimited_stream(text, lines, delimiter, skip_rows, path)
+    quoted_rank = np.cumsum(has_quote) - 1  # line -> its record in quoted_records
+
+    def record(line: int) -> list[str]:
+        return quoted_records[quoted_rank[line]] if has_quote[line] else lines[line].split(delimiter)
+
+    # which lines can be blank is cheap to tell: a line without quotes only if its first and
+    # last characters are delimiters or white space, a quoted line only if its first cell is
+    def blank_or_delimiter(chars: np.ndarray) -> np.ndarray:
+        return (chars == "") | (chars == delimiter) | _each(str.isspace, chars.tolist(), bool)
+
+    maybe_blank = blank_or_delimiter(_each(operator.getitem, lines, object, slice(0, 1)))
+    candidates = np.flatnonzero(maybe_blank)
+    last_chars = _each(operator.getitem, [lines[i] for i in candidates], object, slice(-1, None))
+    maybe_blank[candidates] = blank_or_delimiter(last_chars)
+    maybe_blank[quoted] = [not (r and r[0].strip()) for r in quoted_records]
+    # a line without quotes is blank when it holds only delimiters and white space: the same
+    # as all of its cells being blank
+    blank = np.zeros(n_lines, dtype=bool)
+    for i in np.flatnonzero(maybe_blank):
+        blank[i] = _is_blank(quoted_records[quoted_rank[i]]) if has_quote[i] else (
+            not lines[i].replace(delimiter, "").strip()
+        )
+    # skip_rows counts records above the header, then blank records before it are passed over
+    non_blank = np.flatnonzero(~blank[skip_rows:]) + skip_rows
+    if not len(non_blank):
+        return _NO_ROWS
+    header_line = int(non_blank[0])
+    header = [cell.strip() for cell in record(header_line)]
+    width = len(header)
+    data = non_blank[1:]  # blank records are not data rows
+    sizes = _each(len, lines, np.int64)
+    plain = ~has_quote[data] & (sizes[data] <= MAX_CELL_CHARS)
+    plain &= _each(str.count, lines, np.int64, delimiter)[data] == width - 1
+    if "\ufffd" in text:
+        plain &= ~_each(operator.contains, lines, bool, "\ufffd")[data]
+    plain_lines = [lines[i] for i in data[plain]]
+    plain_cells = (
+        np.array(delimiter.join(plain_lines).split(delimiter), dtype=object).reshape(-1, width)
+        if plain_lines
+        else np.empty((0, width), dtype=object)
+    )
+    other = data[~plain]
+    open_row = None
+    if len(data) and data[-1] == n_lines - 1 and has_quote[-1] and _quote_left_open(lines[-1:], delimiter):
+        open_row = n_lines
+    return _Rows(
+        header, data + 1, plain, plain_cells, [record(i) for i in other], sizes[other], open_row
+    )
+
+
+def _read_delimited_stream(
+    text: str, lines: list[str], delimiter: str, skip_rows: int, path: Path
+) -> _Rows:
+    """Read text in which a quoted cell spans lines as one stream; each record's first line
+    is taken from the reader's line counter (same tokenizer, same cells)."""
+    reader = csv.reader(io.StringIO(text, newline=""), delimiter=delimiter, strict=False)
+    records, first = [], []
+    previous_end = 0
+    try:
+        for record in reader:
+            records.append(record)
+            first.append(previous_end + 1)
+            previous_end = reader.line_num
+    except csv.Error as exc:
+        raise IngestError(
+            f"{path}: cannot be split into {delimiter!r}-separated cells ({exc})"
+        ) from None
+    starts = np.asarray(first, dtype=np.int64)
+    sizes = np.fromiter((max(map(len, r), default=0) for r in records), np.int64, len(records))
+    open_quote = None  # index of a record whose quoted cell never closes
+    if records and _quote_left_open(lines[starts[-1] - 1 :], delimiter):
+        open_quote = len(records) - 1
     # skip_rows counts records above the header, then blank records before it are passed over
     position = skip_rows
     while position < len(records) and _is_blank(records[position]):
         position += 1
     if position >= len(records):
-        return [], [], np.empty(0, dtype=np.int64), np.empty(0, dtype=np.int64), None
+        return _NO_ROWS
     header = [cell.strip() for cell in records[position]]
     data, starts, sizes = records[position + 1 :], starts[position + 1 :], sizes[position + 1 :]
     open_row = int(starts[open_quote - position - 1]) if open_quote is not None and open_quote > position else None
     # blank records are not data rows; a blank record has a blank first cell (cheap filter)
-    first_cells = pd.Series([r[0] if r else "" for r in data], dtype=object)
-    maybe_blank = np.flatnonzero((first_cells.str.strip() == "").to_numpy())
-    blank = [i for i in maybe_blank if _is_blank(data[i])]
-    if blank:
-        keep = np.ones(len(data), dtype=bool)
-        keep[blank] = False
+    keep = np.ones(len(data), dtype=bool)
+    maybe_blank = [i for i, r in enumerate(data) if not (r and r[0].strip())]
+    keep[maybe_blank] = [not _is_blank(data[i]) for i in maybe_blank]
+    if not keep.all():
         data = [r for r, k in zip(data, keep, strict=True) if k]
         starts, sizes = starts[keep], sizes[keep]
     if open_row is not None and not (len(starts) and starts[-1] == open_row):
         open_row = None  # the open-quote record was blank (or the header) and is no data row
-    return header, data, starts, sizes, open_row
+    return _Rows.from_records(header, data, starts, sizes, open_row)
+
+
+def _ends_inside_quotes(line: str, delimiter: str) -> bool:
+    """Whether the lenient reader is still inside a quoted cell at the end of ``line``: it then
+    reads the next line into the same record (one record from two lines, not two)."""
+    return len(_tokenize([line, ""], delimiter, Path("<line>"))) == 1
 
 
 def _quote_left_open(tail: list[str], delimiter: str) -> bool:
@@ -157,9 +255,7 @@ def _quote_left_open(tail: list[str], delimiter: str) -> bool:
     return False
 
 
-def _read_xlsx(
-    path: Path, sheet: str | None, skip_rows: int
-) -> tuple[list[str], list[list[str]], np.ndarray, np.ndarray]:
+def _read_xlsx(path: Path, sheet: str | None, skip_rows: int) -> _Rows:
     from zipfile import BadZipFile
 
     from openpyxl import load_workbook
@@ -192,7 +288,7 @@ def _read_xlsx(
     finally:
         book.close()
     sizes = np.fromiter((max(map(len, r), default=0) for r in records), np.int64, len(records))
-    return header or [], records, np.asarray(starts, dtype=np.int64), sizes
+    return _Rows.from_records(header or [], records, np.asarray(starts, dtype=np.int64), sizes)
 
 
 def _row_errors(
@@ -253,9 +349,8 @@ def read_table(source: SourceDescriptor, table: TableSpec) -> tuple[pd.DataFrame
     digest = hashlib.sha256(data).hexdigest()
     encoding_used = None
     text: str | None = None
-    open_row: int | None = None
     if table.format == "xlsx":
-        header, records, starts, sizes = _read_xlsx(table.file, table.sheet, table.skip_rows)
+        rows = _read_xlsx(table.file, table.sheet, table.skip_rows)
     else:
         if b"\x00" in data[:4096] and not data.startswith((b"\xff\xfe", b"\xfe\xff")):
             raise IngestError(
@@ -268,9 +363,10 @@ def read_table(source: SourceDescriptor, table: TableSpec) -> tuple[pd.DataFrame
                 f"{table.file}: holds a NUL character on line {line} (binary data), "
                 f"not a {table.format.upper()} table"
             )
-        header, records, starts, sizes, open_row = _read_delimited(
+        rows = _read_delimited(
             text, "\t" if table.format == "tsv" else ",", table.skip_rows, table.file
         )
+    header = rows.header
     if not header:
         what = f"has only blank lines below skip_rows = {table.skip_rows}" if data.strip() else "is empty"
         raise IngestError(
@@ -284,36 +380,53 @@ def read_table(source: SourceDescriptor, table: TableSpec) -> tuple[pd.DataFrame
             f"the header has: {', '.join(repr(h) for h in header)}"
         )
     position = {h: i for i, h in enumerate(header)}
-    width = len(header)
-    row_error = _row_errors(
-        records, width, sizes, encoding_used, text is not None and "\ufffd" in text
+    n_rows = len(rows.starts)
+    plain = np.flatnonzero(rows.plain)
+    other = np.flatnonzero(~rows.plain)
+    row_error = np.full(n_rows, None, dtype=object)  # plain rows have none
+    row_error[other] = _row_errors(
+        rows.other_records, len(header), rows.other_sizes, encoding_used,
+        text is not None and "\ufffd" in text,
     )
-    if open_row is not None:  # the last record swallowed every line after its opening quote
+    if rows.open_row is not None:  # the last record swallowed every line after its opening quote
         row_error[-1] = (
-            f"a quoted cell opened on line {open_row} is never closed: it runs to the end of "
+            f"a quoted cell opened on line {rows.open_row} is never closed: it runs to the end of "
             f"the file (line {len(_split_lines(text or ''))}); close the quote"
         )
+    wanted = sorted({position[table.columns[f]] for f in FIELDS if f in table.columns})
+    other_columns = _columns(rows.other_records, wanted, rows.other_sizes)
+    cells: dict[str, np.ndarray] = {}
+    for field in FIELDS:
+        if field not in table.columns:
+            cells[field] = np.full(n_rows, None, dtype=object)
+            continue
+        index = position[table.columns[field]]
+        if not len(other):  # a view: pandas copies it into a text array of its own
+            cells[field] = rows.plain_cells[:, index]
+        elif not len(plain):
+            cells[field] = other_columns[index]
+        else:
+            cells[field] = np.empty(n_rows, dtype=object)
+            cells[field][plain] = rows.plain_cells[:, index]
+            cells[field][other] = other_columns[index]
+    # pandas infers each text column's dtype here (str when it holds any text); copy=False:
+    # the arrays are ours alone, so neither copying nor merging them into blocks is needed
     frame = pd.DataFrame(
         {
             "source_id": source.id,
             "table_file": table.relative_file,
-            "source_row": pd.array(starts, dtype="int64"),
-            "row_error": pd.array(row_error, dtype=object),
-        }
+            "source_row": pd.array(rows.starts, dtype="int64"),
+            "row_error": row_error,
+            **cells,
+        },
+        copy=False,
     )
-    wanted = sorted({position[table.columns[f]] for f in FIELDS if f in table.columns})
-    columns = _columns(records, wanted, sizes)
-    for field in FIELDS:
-        if field in table.columns:
-            frame[field] = pd.array(columns[position[table.columns[field]]], dtype=object)
-        else:
-            frame[field] = pd.array([None] * len(records), dtype=object)
     file_record = {
         "source_id": source.id,
         "table_file": table.relative_file,
         "file_sha256": digest,
         "encoding": encoding_used or "xlsx",
-        "row_count": len(records),
+        "row_count": n_rows,
         "decimal": table.decimal,
         "columns": dict(table.columns),
         "defaults": dict(table.defaults),
@@ -359,5 +472,7 @@ def ingest(sources: list[SourceDescriptor]) -> IngestResult:
     raw_cells = pd.concat(frames, ignore_index=True) if frames else pd.DataFrame()
     source_files = pd.DataFrame(rows)
     return IngestResult(
-        RAW_CELLS.validate(raw_cells), SOURCE_FILES.validate(source_files), pd.DataFrame(table_rows)
+        RAW_CELLS.validate(raw_cells, inplace=True),
+        SOURCE_FILES.validate(source_files, inplace=True),
+        pd.DataFrame(table_rows),
     )
