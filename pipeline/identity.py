@@ -42,6 +42,7 @@ from __future__ import annotations
 
 import multiprocessing
 import os
+import re
 import tempfile
 from collections.abc import Callable, Sequence
 from concurrent.futures import ProcessPoolExecutor
@@ -85,6 +86,15 @@ STRUCTURE_COLUMNS: tuple[str, ...] = (
     "input_smiles_canonical",
     "error",
 )
+#: Columns returned by :func:`standardize_structures`.
+STRUCTURE_RESULT_COLUMNS: tuple[str, ...] = (
+    "parent_smiles",
+    "inchikey",
+    "formula",
+    "input_smiles_canonical",
+    "structure_from",
+    "error",
+)
 LOOKUP_COLUMNS: tuple[str, ...] = ("db_smiles", "db_cas", "db_name", "error")
 #: Cache kinds and the result columns each one stores.
 CACHE_KINDS: dict[str, tuple[str, ...]] = {
@@ -110,6 +120,7 @@ PARALLEL_MIN_UNIQUE = 20_000
 _CHUNK = 2_000
 # First part 2-7 digits without a leading zero, then 2 digits, then the check digit [3].
 _CAS_PATTERN = r"[1-9]\d{1,6}-\d{2}-\d"
+_CAS_FULL = re.compile(_CAS_PATTERN)
 _CAS_DIGITS = 10  # at most 7 + 2 + 1 digits
 _LOOKUP_ERRORS = (ValueError, KeyError, IndexError, TypeError)
 
@@ -117,6 +128,55 @@ _LOOKUP_ERRORS = (ValueError, KeyError, IndexError, TypeError)
 # --------------------------------------------------------------------------------------------
 # text helpers
 # --------------------------------------------------------------------------------------------
+# Identity columns repeat the same few texts many times (one SMILES per compound, thousands of
+# rows each), so text work runs on the unique values of a column and is broadcast back through
+# integer codes: ``codes`` holds, per row, a position in the unique values, or -1 for missing.
+
+
+def _clean_codes(
+    values: pd.Series | Sequence[object] | None, n_rows: int
+) -> tuple[np.ndarray, np.ndarray]:
+    """Per-row codes into the unique cleaned texts (whitespace collapsed and stripped).
+
+    Missing, NaN and empty texts get code -1. The unique texts (object array) are in order of
+    first appearance among the rows, as ``pd.unique`` of the cleaned column would give them.
+    """
+    if values is None:
+        return np.full(n_rows, -1, dtype=np.intp), np.empty(0, dtype=object)
+    raw = values.to_numpy(dtype=object) if isinstance(values, pd.Series) else None
+    if raw is None:
+        raw = np.empty(len(values), dtype=object)
+        raw[:] = list(values)
+    if pd.api.types.infer_dtype(raw, skipna=True) not in ("string", "empty"):
+        # non-text cells (numbers from a spreadsheet) are turned into text the pandas way
+        raw = pd.Series(raw, dtype=object).astype("string").to_numpy(dtype=object, na_value=None)
+    raw_codes, raw_unique = pd.factorize(raw)
+    cleaned = np.empty(len(raw_unique), dtype=object)
+    # str.split() splits at runs of the characters re's \s matches (str.isspace), and drops
+    # them at both ends: the same as re.sub(r"\s+", " ", text).strip(), only faster
+    cleaned[:] = [" ".join(text.split()) or None for text in raw_unique]
+    # distinct raw texts may clean to one text ("a  b", "a b"): factorize once more
+    unique_codes, unique = pd.factorize(cleaned)
+    codes = np.append(unique_codes, -1)[raw_codes]
+    return codes.astype(np.intp, copy=False), unique.astype(object, copy=False)
+
+
+def _take(values: np.ndarray, codes: np.ndarray) -> np.ndarray:
+    """``values[codes]`` as an object array, ``None`` where the code is -1."""
+    padded = np.empty(len(values) + 1, dtype=object)
+    padded[:-1] = values
+    padded[-1] = None
+    return padded[codes]
+
+
+def _take_flag(flags: np.ndarray, codes: np.ndarray) -> np.ndarray:
+    """``flags[codes]`` as a bool array, False where the code is -1."""
+    return np.append(np.asarray(flags, dtype=bool), False)[codes]
+
+
+def _fill(values: np.ndarray, fallback: np.ndarray) -> np.ndarray:
+    """``values`` with its missing entries taken from ``fallback`` (both object arrays)."""
+    return np.where(pd.notna(values), values, fallback)
 
 
 def _clean_text(
@@ -125,20 +185,41 @@ def _clean_text(
     """Strip and collapse whitespace; missing, NaN and empty text become ``<NA>`` (string dtype)."""
     if values is None:
         return pd.Series(pd.NA, index=index, dtype="string")
-    s = values if isinstance(values, pd.Series) else pd.Series(list(values), index=index)
-    s = s.astype("object").where(s.notna(), None).astype("string")
-    s = s.str.replace(r"\s+", " ", regex=True).str.strip()
-    return s.mask(s == "")
+    if isinstance(values, pd.Series):
+        index = values.index
+    codes, unique = _clean_codes(values, len(values))
+    return pd.Series(pd.array(_take(unique, codes), dtype="string"), index=index)
+
+
+def _has_text(part: np.ndarray) -> np.ndarray:
+    """True where a message part holds text other than whitespace."""
+    present = pd.notna(part)
+    if present.any():
+        codes, unique = pd.factorize(part[present])
+        nonblank = np.array([bool(str(text).strip()) for text in unique], dtype=bool)
+        present[present] = nonblank[codes]
+    return present
+
+
+def _join_parts(*parts: np.ndarray) -> np.ndarray:
+    """Join message arrays with '; ', skipping missing or blank parts; all missing -> None."""
+    joined = np.full(len(parts[0]), None, dtype=object)
+    has = np.zeros(len(parts[0]), dtype=bool)
+    for part in parts:
+        valid = _has_text(part)
+        both = valid & has
+        if both.any():
+            joined[both] = joined[both] + "; " + part[both]
+        first = valid & ~has
+        joined[first] = part[first]
+        has |= valid
+    return joined
 
 
 def _join_messages(*parts: pd.Series) -> pd.Series:
     """Join message Series with '; ', skipping missing or empty parts; all missing -> None."""
-    acc = pd.Series(pd.NA, index=parts[0].index, dtype="string")
-    for part in parts:
-        p = part.astype("string")
-        p = p.mask(p.str.strip() == "")
-        acc = acc.where(p.isna(), acc + "; " + p).fillna(p)
-    return _none_object(acc)
+    arrays = [p.astype("string").to_numpy(dtype=object, na_value=None) for p in parts]
+    return pd.Series(_join_parts(*arrays), index=parts[0].index, dtype=object)
 
 
 def _quote(s: pd.Series) -> pd.Series:
@@ -148,6 +229,11 @@ def _quote(s: pd.Series) -> pd.Series:
 def _none_object(s: pd.Series) -> pd.Series:
     """Object Series with ``None`` for every missing value (for plain-Python consumers)."""
     return s.astype("object").where(s.notna(), None)
+
+
+def _object_series(values: np.ndarray, index: pd.Index) -> pd.Series:
+    """Object Series of ``values`` (pandas would otherwise infer its string dtype)."""
+    return pd.Series(values, index=index, dtype=object)
 
 
 # --------------------------------------------------------------------------------------------
@@ -182,17 +268,13 @@ def cas_is_missing(cas: pd.Series) -> np.ndarray:
     return _clean_text(cas).isna().to_numpy(dtype=bool)
 
 
-def _cas_analysis(
-    cas: pd.Series,
-) -> tuple[pd.Series, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """Return (clean text, missing, well-formed, expected check digit (-1 if not formed), ok)."""
-    s = _clean_text(cas)
-    missing = s.isna().to_numpy(dtype=bool)
-    formed = s.str.fullmatch(_CAS_PATTERN).fillna(False).to_numpy(dtype=bool)
-    expected = np.full(len(s), -1, dtype=np.int64)
-    ok = np.zeros(len(s), dtype=bool)
+def _cas_rule(texts: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(well-formed, expected check digit (-1 if not formed), ok) for clean CAS texts."""
+    formed = np.array([_CAS_FULL.fullmatch(t) is not None for t in texts], dtype=bool)
+    expected = np.full(len(texts), -1, dtype=np.int64)
+    ok = np.zeros(len(texts), dtype=bool)
     if formed.any():
-        digits = s[formed].str.replace("-", "", regex=False).str.zfill(_CAS_DIGITS)
+        digits = [t.replace("-", "").zfill(_CAS_DIGITS) for t in texts[formed]]
         arr = np.frombuffer("".join(digits).encode("ascii"), dtype=np.uint8)
         arr = arr.reshape(-1, _CAS_DIGITS).astype(np.int64) - ord("0")
         # position 1 is the digit just left of the check digit; zero padding adds nothing
@@ -200,7 +282,24 @@ def _cas_analysis(
         exp = (arr[:, :-1] @ weights) % 10
         expected[formed] = exp
         ok[formed] = exp == arr[:, -1]
-    return s, missing, formed, expected, ok
+    return formed, expected, ok
+
+
+def _cas_analysis(
+    cas: pd.Series,
+) -> tuple[pd.Series, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Return (clean text, missing, well-formed, expected check digit (-1 if not formed), ok)."""
+    codes, unique = _clean_codes(cas, len(cas))
+    formed, expected, ok = _cas_rule(unique)
+    s = pd.Series(pd.array(_take(unique, codes), dtype="string"), index=cas.index)
+    missing = codes < 0
+    return (
+        s,
+        missing,
+        _take_flag(formed, codes),
+        np.append(expected, -1)[codes],
+        _take_flag(ok, codes),
+    )
 
 
 def cas_check_digit_ok(cas: pd.Series) -> np.ndarray:
@@ -330,6 +429,8 @@ class IdentityCache:
             for kind, cols in CACHE_KINDS.items()
         }
         self._dirty = False
+        # per kind, the stored frame's values as one object array (built on first use)
+        self._values: dict[str, np.ndarray] = {}
         if self.path.exists():
             self._load()
 
@@ -349,15 +450,33 @@ class IdentityCache:
     def __len__(self) -> int:
         return sum(len(f) for f in self._frames.values())
 
+    def _positions(self, kind: str, texts: Sequence[str] | pd.Index) -> np.ndarray:
+        """Row position of each text in the kind's stored frame, -1 if absent (counts hits)."""
+        _check_kind(kind)
+        # the stored index is unique, and its hash table is kept between calls
+        positions = self._frames[kind].index.get_indexer(pd.Index(texts))
+        found = int((positions >= 0).sum())
+        self.hits += found
+        self.misses += len(positions) - found
+        return positions
+
     def lookup(self, kind: str, texts: Sequence[str] | pd.Index) -> pd.DataFrame:
         """Cached rows for ``texts`` (those present), indexed by text."""
-        _check_kind(kind)
-        frame = self._frames[kind]
-        keys = pd.Index(texts)
-        found = keys[keys.isin(frame.index)]
-        self.hits += len(found)
-        self.misses += len(keys) - len(found)
-        return frame.loc[found]
+        positions = self._positions(kind, texts)
+        return self._frames[kind].iloc[positions[positions >= 0]]
+
+    def _take(self, kind: str, texts: pd.Index) -> tuple[np.ndarray, np.ndarray]:
+        """(values, found): the kind's columns for ``texts`` as a 2-D object array (a row of
+        ``None`` where absent) and whether each text was in the cache."""
+        positions = self._positions(kind, texts)
+        found = positions >= 0
+        stored = self._values.get(kind)
+        if stored is None:
+            stored = self._values[kind] = self._frames[kind].to_numpy(dtype=object)
+        values = np.full((len(texts), stored.shape[1]), None, dtype=object)
+        if found.any():
+            values[found] = stored[positions[found]]
+        return values, found
 
     def store(self, kind: str, results: pd.DataFrame) -> None:
         """Add results (indexed by text, with the kind's columns); later rows win."""
@@ -375,6 +494,7 @@ class IdentityCache:
         merged = pd.concat([old[~old.index.isin(new.index)], new]) if len(old) else new
         merged.index.name = "text"
         self._frames[kind] = merged
+        self._values.pop(kind, None)
         self._dirty = True
 
     def save(self, force: bool = False) -> None:
@@ -414,24 +534,26 @@ def _cached(
     compute: Callable[[list[str]], list[tuple[str | None, ...]]],
     cache: IdentityCache | None,
 ) -> pd.DataFrame:
-    """Results for unique ``texts``: cache hits plus ``compute(list_of_texts)`` for the rest."""
+    """Results for unique ``texts``: cache hits plus ``compute(list_of_texts)`` for the rest.
+
+    Rows are in the order of ``texts`` (missing texts dropped, repeats kept once).
+    """
     cols = list(CACHE_KINDS[kind])
     texts = pd.Index(texts).dropna().unique()
     if cache is not None:
-        hit = cache.lookup(kind, texts)
-        todo = texts[~texts.isin(hit.index)]
+        values, found = cache._take(kind, texts)
     else:
-        hit = pd.DataFrame(columns=cols, dtype="object")
-        todo = texts
+        values = np.full((len(texts), len(cols)), None, dtype=object)
+        found = np.zeros(len(texts), dtype=bool)
+    todo = texts[~found]
     if len(todo):
         rows = compute(list(todo))
         new = pd.DataFrame(rows, columns=cols, index=pd.Index(todo, name="text"), dtype="object")
+        new = new.where(new.notna(), None)
         if cache is not None:
             cache.store(kind, new)
-        out = pd.concat([hit, new]) if len(hit) else new
-    else:
-        out = hit
-    return out.reindex(texts)
+        values[~found] = new.to_numpy(dtype=object)
+    return pd.DataFrame(values, index=texts, columns=cols, dtype=object)
 
 
 # --------------------------------------------------------------------------------------------
@@ -513,15 +635,56 @@ def _standardize_unique(
     return _cached(kind, texts, lambda todo: _standardize_parallel(kind, todo, n_jobs), cache)
 
 
-def _rows_from(results: pd.DataFrame, keys: pd.Series, cols: Sequence[str]) -> pd.DataFrame:
-    """Map unique-text results back onto rows (``keys`` holds each row's text or NA)."""
-    idx = pd.Index(keys.astype("object").where(keys.notna(), None))
-    if len(results):
-        out = results.reindex(idx)[list(cols)]
-    else:
-        out = pd.DataFrame(None, index=idx, columns=list(cols), dtype="object")
-    out.index = keys.index
-    return out.astype("object").where(out.notna(), None)
+def _unique_columns(results: pd.DataFrame, cols: Sequence[str]) -> dict[str, np.ndarray]:
+    return {c: results[c].to_numpy(dtype=object) for c in cols}
+
+
+def _structure_rows(
+    smiles_codes: np.ndarray,
+    smiles_texts: np.ndarray,
+    inchi_codes: np.ndarray,
+    inchi_texts: np.ndarray,
+    cache: IdentityCache | None,
+    n_jobs: int | None,
+) -> dict[str, np.ndarray]:
+    """Per-row structure results (the columns of :func:`standardize_structures`) from coded
+    SMILES and InChI texts (see :func:`_clean_codes`)."""
+    cols = ("parent_smiles", "inchikey", "formula", "input_smiles_canonical")
+    by_smiles = _standardize_unique("smiles", pd.Index(smiles_texts), cache, n_jobs)
+    by_inchi = _standardize_unique("inchi", pd.Index(inchi_texts), cache, n_jobs)
+    sm = {
+        c: _take(v, smiles_codes) for c, v in _unique_columns(by_smiles, STRUCTURE_COLUMNS).items()
+    }
+    inn = {
+        c: _take(v, inchi_codes) for c, v in _unique_columns(by_inchi, STRUCTURE_COLUMNS).items()
+    }
+    sm_ok = pd.notna(sm["inchikey"])
+    in_ok = pd.notna(inn["inchikey"])
+    use_inchi = ~sm_ok & in_ok
+    out = {c: np.where(use_inchi, inn[c], sm[c]) for c in cols}
+    out["structure_from"] = np.where(sm_ok, "smiles", np.where(use_inchi, "inchi", None))
+
+    n_rows = len(smiles_codes)
+    rescued = np.full(n_rows, None, dtype=object)
+    rescued[(smiles_codes >= 0) & ~sm_ok & use_inchi] = "the structure was taken from the InChI"
+    both = sm_ok & in_ok
+    differ = np.zeros(n_rows, dtype=bool)
+    differ[both] = sm["inchikey"][both] != inn["inchikey"][both]
+    clash = np.full(n_rows, None, dtype=object)
+    if differ.any():
+        clash[differ] = (
+            "SMILES '"
+            + _take(smiles_texts, smiles_codes[differ])
+            + "' and InChI '"
+            + _take(inchi_texts, inchi_codes[differ])
+            + "' give different parents ("
+            + sm["inchikey"][differ]
+            + " vs "
+            + inn["inchikey"][differ]
+            + "); the SMILES was used"
+        )
+    out["error"] = _join_parts(sm["error"], inn["error"], rescued, clash)
+    return out
 
 
 def standardize_structures(
@@ -587,50 +750,12 @@ def standardize_structures(
         raise ValueError("smiles and inchi must share one index; got different indexes")
     index = smiles.index if smiles is not None else inchi.index if inchi is not None else None
     assert index is not None
-    s = _clean_text(smiles, index)
-    i = _clean_text(inchi, index)
-    cols = [*STRUCTURE_COLUMNS]
-    sm = _rows_from(_standardize_unique("smiles", pd.Index(s.dropna()), cache, n_jobs), s, cols)
-    inn = _rows_from(_standardize_unique("inchi", pd.Index(i.dropna()), cache, n_jobs), i, cols)
-    sm_ok = sm["inchikey"].notna()
-    in_ok = inn["inchikey"].notna()
-    use_inchi = ~sm_ok & in_ok
-    out = sm[cols].copy()
-    out.loc[use_inchi, cols] = inn.loc[use_inchi, cols]
-    out["structure_from"] = np.where(sm_ok, "smiles", np.where(use_inchi, "inchi", None))
-    out["structure_from"] = _none_object(out["structure_from"])
-
-    sm_err = sm["error"].where(s.notna())
-    in_err = inn["error"].where(i.notna())
-    rescued = pd.Series(
-        np.where(s.notna() & ~sm_ok & use_inchi, "the structure was taken from the InChI", None),
-        index=index,
-    )
-    differ = sm_ok & in_ok & (sm["inchikey"] != inn["inchikey"])
-    clash = (
-        "SMILES "
-        + _quote(s)
-        + " and InChI "
-        + _quote(i)
-        + " give different parents ("
-        + sm["inchikey"].astype("string")
-        + " vs "
-        + inn["inchikey"].astype("string")
-        + "); the SMILES was used"
-    ).where(differ)
-    out["error"] = _join_messages(sm_err, in_err, rescued, clash)
+    smiles_codes, smiles_texts = _clean_codes(smiles, len(index))
+    inchi_codes, inchi_texts = _clean_codes(inchi, len(index))
+    rows = _structure_rows(smiles_codes, smiles_texts, inchi_codes, inchi_texts, cache, n_jobs)
     if cache is not None and save:
         cache.save()
-    return out[
-        [
-            "parent_smiles",
-            "inchikey",
-            "formula",
-            "input_smiles_canonical",
-            "structure_from",
-            "error",
-        ]
-    ]
+    return pd.DataFrame({c: _object_series(rows[c], index) for c in STRUCTURE_RESULT_COLUMNS})
 
 
 # --------------------------------------------------------------------------------------------
@@ -659,11 +784,39 @@ def _lookup_unique(kind: str, texts: pd.Index, cache: IdentityCache | None) -> p
     return _cached(kind, texts, lambda todo: _lookup_texts(kind, todo), cache)
 
 
-def _parent_keys(db_smiles: pd.Series, cache: IdentityCache | None) -> pd.DataFrame:
-    """Parent InChIKey / SMILES for database SMILES (index kept)."""
-    keys = _clean_text(db_smiles)
-    res = _standardize_unique("smiles", pd.Index(keys.dropna()), cache)
-    return _rows_from(res, keys, ["parent_smiles", "inchikey"])
+def _parent_keys(
+    db_smiles: np.ndarray, cache: IdentityCache | None
+) -> tuple[np.ndarray, np.ndarray]:
+    """(parent SMILES, parent InChIKey) for database SMILES (object array, ``None`` allowed)."""
+    codes, texts = _clean_codes(pd.Series(db_smiles, dtype=object), len(db_smiles))
+    res = _standardize_unique("smiles", pd.Index(texts), cache)
+    return (
+        _take(res["parent_smiles"].to_numpy(dtype=object), codes),
+        _take(res["inchikey"].to_numpy(dtype=object), codes),
+    )
+
+
+def _lookup_on(
+    kind: str, texts: np.ndarray, need: np.ndarray, cache: IdentityCache | None
+) -> dict[str, np.ndarray]:
+    """Database columns for the unique ``texts`` where ``need`` holds (``None`` elsewhere)."""
+    res = _lookup_unique(kind, pd.Index(texts[need]), cache)
+    out: dict[str, np.ndarray] = {}
+    for col in LOOKUP_COLUMNS:
+        values = np.full(len(texts), None, dtype=object)
+        values[need] = res[col].to_numpy(dtype=object)
+        out[col] = values
+    return out
+
+
+def _lookup_rows(
+    kind: str, keys: np.ndarray, rows: np.ndarray, cache: IdentityCache | None
+) -> dict[str, np.ndarray]:
+    """Database columns per row for ``keys[rows]`` (``None`` on other rows), over unique keys."""
+    codes = np.full(len(keys), -1, dtype=np.intp)
+    codes[rows], unique = pd.factorize(keys[rows])
+    res = _lookup_unique(kind, pd.Index(unique), cache)
+    return {c: _take(res[c].to_numpy(dtype=object), codes) for c in LOOKUP_COLUMNS}
 
 
 def _prepare_synonyms(synonyms: pd.DataFrame | None, cache: IdentityCache | None) -> pd.DataFrame:
@@ -776,125 +929,165 @@ def resolve_identities(
     (['QTBSBXVTEAMEQO-UHFFFAOYSA-N', 'QTBSBXVTEAMEQO-UHFFFAOYSA-N'], ['name', 'cas'])
     """
     index = frame.index
-    name = _clean_text(frame["name"] if "name" in frame else None, index)
-    name_key = name.str.casefold()
-    smiles_in = _clean_text(frame["smiles"] if "smiles" in frame else None, index)
-    inchi_in = _clean_text(frame["inchi"] if "inchi" in frame else None, index)
-    cas_s, cas_missing, _, _, cas_ok = _cas_analysis(
-        frame["cas"] if "cas" in frame else pd.Series(None, index=index, dtype="object")
-    )
-    cas_s.index = index
+    n_rows = len(index)
 
-    st = standardize_structures(smiles_in, inchi_in, cache=cache, n_jobs=n_jobs, save=False)
+    def column(field: str) -> pd.Series | None:
+        return frame[field] if field in frame else None
+
+    # Each identifier column as per-row codes into its unique cleaned texts; everything that
+    # depends on one column (lookups, messages) is worked out once per unique text.
+    name_codes, names = _clean_codes(column("name"), n_rows)
+    smiles_codes, smiles_texts = _clean_codes(column("smiles"), n_rows)
+    inchi_codes, inchi_texts = _clean_codes(column("inchi"), n_rows)
+    cas_codes, cas_texts = _clean_codes(column("cas"), n_rows)
+    name_keys = np.array([t.casefold() for t in names], dtype=object)
+    _, _, cas_ok_u = _cas_rule(cas_texts)
+    cas_missing = cas_codes < 0
+    cas_ok = _take_flag(cas_ok_u, cas_codes)
+
+    st = _structure_rows(smiles_codes, smiles_texts, inchi_codes, inchi_texts, cache, n_jobs)
     syn = _prepare_synonyms(synonyms, cache)
 
-    # --- synonym hits by name
-    syn_rows = _rows_from(syn, name_key, ["inchikey", "parent_smiles", "cas"])
-    syn_hit = syn_rows["inchikey"].notna()
+    # --- synonym hits by name (per unique name)
+    syn_pos = syn.index.get_indexer(pd.Index(name_keys)) if len(syn) else np.full(len(names), -1)
+    syn_key_u = _take(syn["inchikey"].to_numpy(dtype=object), syn_pos)
+    syn_smiles_u = _take(syn["parent_smiles"].to_numpy(dtype=object), syn_pos)
+    syn_cas_u = _take(syn["cas"].to_numpy(dtype=object), syn_pos)
+    syn_hit_u = pd.notna(syn_key_u)
 
-    # --- CAS: steward table first, then the database
-    valid_cas = cas_s.where(cas_ok)
+    # --- CAS (per unique CAS): steward table first, then the database
     syn_by_cas = syn[syn["cas"].notna()].drop_duplicates("cas").set_index("cas")
-    cas_syn = _rows_from(syn_by_cas, valid_cas, ["inchikey", "parent_smiles"])
-    need_db_cas = valid_cas.where(cas_syn["inchikey"].isna())
-    cas_db = _rows_from(
-        _lookup_unique("cas", pd.Index(need_db_cas.dropna()), cache), need_db_cas, LOOKUP_COLUMNS
+    cas_pos = (
+        syn_by_cas.index.get_indexer(pd.Index(cas_texts))
+        if len(syn_by_cas)
+        else np.full(len(cas_texts), -1)
     )
-    cas_par = _parent_keys(cas_db["db_smiles"], cache)
-    cas_key = cas_syn["inchikey"].fillna(cas_par["inchikey"])
-    cas_smiles = cas_syn["parent_smiles"].fillna(cas_par["parent_smiles"])
+    cas_pos[~cas_ok_u] = -1
+    cas_syn_key_u = _take(syn_by_cas["inchikey"].to_numpy(dtype=object), cas_pos)
+    cas_syn_smiles_u = _take(syn_by_cas["parent_smiles"].to_numpy(dtype=object), cas_pos)
+    cas_db_u = _lookup_on("cas", cas_texts, cas_ok_u & pd.isna(cas_syn_key_u), cache)
+    cas_par_smiles_u, cas_par_key_u = _parent_keys(cas_db_u["db_smiles"], cache)
+    cas_key_u = _fill(cas_syn_key_u, cas_par_key_u)
+    cas_smiles_u = _fill(cas_syn_smiles_u, cas_par_smiles_u)
 
-    # --- name via the database (rows whose name is not a steward synonym)
-    need_db_name = name.where(~syn_hit)
-    name_db = _rows_from(
-        _lookup_unique("name", pd.Index(need_db_name.dropna()), cache), need_db_name, LOOKUP_COLUMNS
-    )
-    name_par = _parent_keys(name_db["db_smiles"], cache)
-    name_inchikey = syn_rows["inchikey"].fillna(name_par["inchikey"])
+    # --- name via the database (per unique name that is not a steward synonym)
+    name_db_u = _lookup_on("name", names, ~syn_hit_u, cache)
+    name_par_smiles_u, name_par_key_u = _parent_keys(name_db_u["db_smiles"], cache)
+    name_inchikey_u = _fill(syn_key_u, name_par_key_u)
 
-    # --- precedence: structure > synonym > CAS > name
-    has_struct = st["inchikey"].notna()
+    # --- precedence per row: structure > synonym > CAS > name
+    has_struct = pd.notna(st["inchikey"])
+    syn_hit = _take_flag(syn_hit_u, name_codes)
+    cas_key = _take(cas_key_u, cas_codes)
+    name_par_key = _take(name_par_key_u, name_codes)
     by_syn = ~has_struct & syn_hit
-    by_cas = ~has_struct & ~by_syn & cas_key.notna()
-    by_name = ~has_struct & ~by_syn & ~by_cas & name_par["inchikey"].notna()
-    resolved_by = st["structure_from"].where(has_struct)
-    resolved_by = resolved_by.mask(by_syn, "synonym").mask(by_cas, "cas").mask(by_name, "name")
+    by_cas = ~has_struct & ~by_syn & pd.notna(cas_key)
+    by_name = ~has_struct & ~by_syn & ~by_cas & pd.notna(name_par_key)
+    resolved_by = np.where(has_struct, st["structure_from"], None)
+    resolved_by[by_syn] = "synonym"
+    resolved_by[by_cas] = "cas"
+    resolved_by[by_name] = "name"
 
-    inchikey = st["inchikey"].where(has_struct)
-    inchikey = inchikey.mask(by_syn, syn_rows["inchikey"]).mask(by_cas, cas_key)
-    inchikey = inchikey.mask(by_name, name_par["inchikey"])
-    parent = st["parent_smiles"].where(has_struct)
-    parent = parent.mask(by_syn, syn_rows["parent_smiles"]).mask(by_cas, cas_smiles)
-    parent = parent.mask(by_name, name_par["parent_smiles"])
-    inchikey, parent = _none_object(inchikey), _none_object(parent)
+    inchikey = np.where(has_struct, st["inchikey"], None)
+    parent = np.where(has_struct, st["parent_smiles"], None)
+    for chosen, key_u, smiles_u, codes in (
+        (by_syn, syn_key_u, syn_smiles_u, name_codes),
+        (by_cas, cas_key_u, cas_smiles_u, cas_codes),
+        (by_name, name_par_key_u, name_par_smiles_u, name_codes),
+    ):
+        if chosen.any():
+            inchikey[chosen] = _take(key_u, codes[chosen])
+            parent[chosen] = _take(smiles_u, codes[chosen])
+    has_key = pd.notna(inchikey)
 
     # formula of the parent: from the structure result or a standardization of the parent SMILES
-    formula = st["formula"].where(has_struct)
-    need_formula = parent.where(~has_struct & pd.Series(inchikey, index=index).notna())
-    if need_formula.notna().any():
-        f_res = _standardize_unique("smiles", pd.Index(need_formula.dropna()), cache)
-        formula = formula.fillna(_rows_from(f_res, need_formula, ["formula"])["formula"])
+    formula = np.where(has_struct, st["formula"], None)
+    need_formula = ~has_struct & has_key & pd.notna(parent)
+    if need_formula.any():
+        f_codes, f_texts = pd.factorize(parent[need_formula])
+        f_res = _standardize_unique("smiles", pd.Index(f_texts), cache)
+        formula[need_formula] = _take(f_res["formula"].to_numpy(dtype=object), f_codes)
 
     # --- database entry of the parent, for a missing CAS or name
-    need_entry = inchikey.where(~(pd.Series(cas_ok, index=index)) | name.isna())
-    entry = _rows_from(
-        _lookup_unique("inchikey", pd.Index(need_entry.dropna()), cache), need_entry, LOOKUP_COLUMNS
-    )
-    cas_out = valid_cas.astype("object")
-    cas_out = cas_out.where(cas_out.notna(), syn_rows["cas"].where(by_syn))
-    cas_out = cas_out.where(pd.notna(cas_out), entry["db_cas"])
-    name_out = name.astype("object")
-    name_out = name_out.where(name_out.notna(), entry["db_name"])
-    name_out = name_out.where(pd.notna(name_out), cas_db["db_name"])
+    entry = _lookup_rows("inchikey", inchikey, (~cas_ok | (name_codes < 0)) & has_key, cache)
+    valid_cas_u = np.where(cas_ok_u, cas_texts, None)
+    cas_out = _take(valid_cas_u, cas_codes)
+    from_syn = pd.isna(cas_out) & by_syn
+    cas_out[from_syn] = _take(syn_cas_u, name_codes[from_syn])
+    cas_out = _fill(cas_out, entry["db_cas"])
+    name_out = _fill(_take(names, name_codes), entry["db_name"])
+    name_out = _fill(name_out, _take(cas_db_u["db_name"], cas_codes))
 
-    # --- stable id for rows without a structure
-    unresolved = (
-        ("unresolved:name:" + name_key)
-        .fillna("unresolved:cas:" + cas_s)
-        .fillna("unresolved:smiles:" + smiles_in)
-        .fillna("unresolved:inchi:" + inchi_in)
-    )
-    compound_id = _none_object(pd.Series(inchikey, index=index).astype("object").fillna(unresolved))
+    # --- stable id and reasons for rows without a structure
+    compound_id = inchikey.copy()
+    nothing = ~has_key
+    error = st["error"]
+    if nothing.any():
+        unresolved = np.full(int(nothing.sum()), None, dtype=object)
+        for prefix, texts, codes in (
+            ("unresolved:name:", name_keys, name_codes),
+            ("unresolved:cas:", cas_texts, cas_codes),
+            ("unresolved:smiles:", smiles_texts, smiles_codes),
+            ("unresolved:inchi:", inchi_texts, inchi_codes),
+        ):
+            todo = pd.isna(unresolved) & (codes[nothing] >= 0)
+            unresolved[todo] = prefix + _take(texts, codes[nothing][todo])
+        compound_id[nothing] = unresolved
+
+        def why(
+            head: str, texts: np.ndarray, tail: str, codes: np.ndarray, where: np.ndarray
+        ) -> np.ndarray:
+            """``head + text + tail`` on the rows ``where`` (which all have a text)."""
+            out = np.full(n_rows, None, dtype=object)
+            out[where] = head + _take(texts, codes[where]) + tail
+            return out
+
+        why_name = why(
+            "name '",
+            names,
+            "' is neither a steward synonym nor in the chemicals database",
+            name_codes,
+            nothing & (name_codes >= 0),
+        )
+        why_cas_bad = why(
+            "CAS '",
+            cas_texts,
+            "' fails the CAS check-digit rule",
+            cas_codes,
+            nothing & ~cas_missing & ~cas_ok,
+        )
+        why_cas_db = why(
+            "CAS '", cas_texts, "' is not in the chemicals database", cas_codes, nothing & cas_ok
+        )
+        given_any = (name_codes >= 0) | ~cas_missing | (smiles_codes >= 0) | (inchi_codes >= 0)
+        why_none = np.where(nothing & ~given_any, "no name, CAS, SMILES or InChI given", None)
+        reasons = _join_parts(why_name, why_cas_bad, why_cas_db)
+        unfound = np.full(n_rows, None, dtype=object)
+        has_reason = pd.notna(reasons)
+        unfound[has_reason] = "no structure found: " + reasons[has_reason]
+        error = _join_parts(error, unfound, why_none)
 
     cas_valid = pd.array(np.where(cas_missing, None, cas_ok), dtype="boolean")
-
-    # --- reasons when nothing resolved
-    nothing = pd.Series(inchikey, index=index).isna()
-    given_any = (
-        name.notna() | ~pd.Series(cas_missing, index=index) | smiles_in.notna() | inchi_in.notna()
-    )
-    why_name = (
-        "name " + _quote(name) + " is neither a steward synonym nor in the chemicals database"
-    ).where(nothing & name.notna())
-    why_cas_bad = ("CAS " + _quote(cas_s) + " fails the CAS check-digit rule").where(
-        nothing & pd.Series(~cas_missing & ~cas_ok, index=index)
-    )
-    why_cas_db = ("CAS " + _quote(cas_s) + " is not in the chemicals database").where(
-        nothing & pd.Series(cas_ok, index=index)
-    )
-    why_none = pd.Series(
-        np.where(nothing & ~given_any, "no name, CAS, SMILES or InChI given", None), index=index
-    )
-    reasons = _join_messages(why_name, why_cas_bad, why_cas_db)
-    unfound = ("no structure found: " + reasons.astype("string")).where(reasons.notna())
-    error = _join_messages(st["error"], unfound, why_none)
-
+    columns = {
+        "compound_id": compound_id,
+        "inchikey": inchikey,
+        "smiles": parent,
+        "formula": formula,
+        "cas": cas_out,
+        "name": name_out,
+        "resolved_by": resolved_by,
+        "cas_valid": None,
+        "cas_given": _take(cas_texts, cas_codes),
+        "name_inchikey": _take(name_inchikey_u, name_codes),
+        "cas_inchikey": cas_key,
+        # the species as the row gave it (salt or charged form kept), for CAS comparisons
+        "species_smiles": np.where(has_struct, st["input_smiles_canonical"], None),
+        "error": error,
+    }
     out = pd.DataFrame(
         {
-            "compound_id": compound_id,
-            "inchikey": inchikey,
-            "smiles": parent,
-            "formula": _none_object(formula),
-            "cas": _none_object(pd.Series(cas_out, index=index)),
-            "name": _none_object(pd.Series(name_out, index=index)),
-            "resolved_by": _none_object(resolved_by),
-            "cas_valid": cas_valid,
-            "cas_given": _none_object(cas_s),
-            "name_inchikey": _none_object(name_inchikey),
-            "cas_inchikey": _none_object(cas_key),
-            # the species as the row gave it (salt or charged form kept), for CAS comparisons
-            "species_smiles": _none_object(st["input_smiles_canonical"].where(has_struct)),
-            "error": _none_object(error),
+            c: pd.Series(cas_valid, index=index) if c == "cas_valid" else _object_series(v, index)
+            for c, v in columns.items()
         },
         index=index,
     )
