@@ -174,9 +174,15 @@ def _take_flag(flags: np.ndarray, codes: np.ndarray) -> np.ndarray:
     return np.append(np.asarray(flags, dtype=bool), False)[codes]
 
 
+def _present(values: np.ndarray) -> np.ndarray:
+    """True where an object array holds a value: the arrays here mark missing by ``None`` only
+    (a plain comparison, several times faster than ``pd.notna`` on object arrays)."""
+    return np.not_equal(values, None)
+
+
 def _fill(values: np.ndarray, fallback: np.ndarray) -> np.ndarray:
     """``values`` with its missing entries taken from ``fallback`` (both object arrays)."""
-    return np.where(pd.notna(values), values, fallback)
+    return np.where(_present(values), values, fallback)
 
 
 def _clean_text(
@@ -193,7 +199,7 @@ def _clean_text(
 
 def _has_text(part: np.ndarray) -> np.ndarray:
     """True where a message part holds text other than whitespace."""
-    present = pd.notna(part)
+    present = _present(part)
     if present.any():
         codes, unique = pd.factorize(part[present])
         nonblank = np.array([bool(str(text).strip()) for text in unique], dtype=bool)
@@ -429,8 +435,8 @@ class IdentityCache:
             for kind, cols in CACHE_KINDS.items()
         }
         self._dirty = False
-        # per kind, the stored frame's values as one object array (built on first use)
-        self._values: dict[str, np.ndarray] = {}
+        # per kind, the stored frame's columns as object arrays (built on first use)
+        self._values: dict[str, dict[str, np.ndarray]] = {}
         if self.path.exists():
             self._load()
 
@@ -465,18 +471,15 @@ class IdentityCache:
         positions = self._positions(kind, texts)
         return self._frames[kind].iloc[positions[positions >= 0]]
 
-    def _take(self, kind: str, texts: pd.Index) -> tuple[np.ndarray, np.ndarray]:
-        """(values, found): the kind's columns for ``texts`` as a 2-D object array (a row of
-        ``None`` where absent) and whether each text was in the cache."""
+    def _take(self, kind: str, texts: pd.Index) -> tuple[dict[str, np.ndarray], np.ndarray]:
+        """(columns, found): the kind's result columns for ``texts`` as object arrays
+        (``None`` where absent) and whether each text was in the cache."""
         positions = self._positions(kind, texts)
-        found = positions >= 0
         stored = self._values.get(kind)
         if stored is None:
-            stored = self._values[kind] = self._frames[kind].to_numpy(dtype=object)
-        values = np.full((len(texts), stored.shape[1]), None, dtype=object)
-        if found.any():
-            values[found] = stored[positions[found]]
-        return values, found
+            frame = self._frames[kind]
+            stored = self._values[kind] = {c: frame[c].to_numpy(dtype=object) for c in frame}
+        return {c: _take(v, positions) for c, v in stored.items()}, positions >= 0
 
     def store(self, kind: str, results: pd.DataFrame) -> None:
         """Add results (indexed by text, with the kind's columns); later rows win."""
@@ -533,17 +536,14 @@ def _cached(
     texts: pd.Index,
     compute: Callable[[list[str]], list[tuple[str | None, ...]]],
     cache: IdentityCache | None,
-) -> pd.DataFrame:
-    """Results for unique ``texts``: cache hits plus ``compute(list_of_texts)`` for the rest.
-
-    Rows are in the order of ``texts`` (missing texts dropped, repeats kept once).
-    """
+) -> dict[str, np.ndarray]:
+    """Results for ``texts`` (unique, none missing): cache hits plus ``compute(list_of_texts)``
+    for the rest, as one object array per result column, aligned with ``texts``."""
     cols = list(CACHE_KINDS[kind])
-    texts = pd.Index(texts).dropna().unique()
     if cache is not None:
         values, found = cache._take(kind, texts)
     else:
-        values = np.full((len(texts), len(cols)), None, dtype=object)
+        values = {c: np.full(len(texts), None, dtype=object) for c in cols}
         found = np.zeros(len(texts), dtype=bool)
     todo = texts[~found]
     if len(todo):
@@ -552,8 +552,9 @@ def _cached(
         new = new.where(new.notna(), None)
         if cache is not None:
             cache.store(kind, new)
-        values[~found] = new.to_numpy(dtype=object)
-    return pd.DataFrame(values, index=texts, columns=cols, dtype=object)
+        for c in cols:
+            values[c][~found] = new[c].to_numpy(dtype=object)
+    return values
 
 
 # --------------------------------------------------------------------------------------------
@@ -631,12 +632,8 @@ def _standardize_parallel(
 
 def _standardize_unique(
     kind: str, texts: pd.Index, cache: IdentityCache | None, n_jobs: int | None = None
-) -> pd.DataFrame:
+) -> dict[str, np.ndarray]:
     return _cached(kind, texts, lambda todo: _standardize_parallel(kind, todo, n_jobs), cache)
-
-
-def _unique_columns(results: pd.DataFrame, cols: Sequence[str]) -> dict[str, np.ndarray]:
-    return {c: results[c].to_numpy(dtype=object) for c in cols}
 
 
 def _structure_rows(
@@ -652,16 +649,13 @@ def _structure_rows(
     cols = ("parent_smiles", "inchikey", "formula", "input_smiles_canonical")
     by_smiles = _standardize_unique("smiles", pd.Index(smiles_texts), cache, n_jobs)
     by_inchi = _standardize_unique("inchi", pd.Index(inchi_texts), cache, n_jobs)
-    sm = {
-        c: _take(v, smiles_codes) for c, v in _unique_columns(by_smiles, STRUCTURE_COLUMNS).items()
-    }
-    inn = {
-        c: _take(v, inchi_codes) for c, v in _unique_columns(by_inchi, STRUCTURE_COLUMNS).items()
-    }
-    sm_ok = pd.notna(sm["inchikey"])
-    in_ok = pd.notna(inn["inchikey"])
+    sm_ok = _take_flag(_present(by_smiles["inchikey"]), smiles_codes)
+    in_ok = _take_flag(_present(by_inchi["inchikey"]), inchi_codes)
     use_inchi = ~sm_ok & in_ok
-    out = {c: np.where(use_inchi, inn[c], sm[c]) for c in cols}
+    out = {c: _take(by_smiles[c], smiles_codes) for c in cols}
+    if use_inchi.any():
+        for c in cols:
+            out[c][use_inchi] = _take(by_inchi[c], inchi_codes[use_inchi])
     out["structure_from"] = np.where(sm_ok, "smiles", np.where(use_inchi, "inchi", None))
 
     n_rows = len(smiles_codes)
@@ -669,7 +663,9 @@ def _structure_rows(
     rescued[(smiles_codes >= 0) & ~sm_ok & use_inchi] = "the structure was taken from the InChI"
     both = sm_ok & in_ok
     differ = np.zeros(n_rows, dtype=bool)
-    differ[both] = sm["inchikey"][both] != inn["inchikey"][both]
+    sm_key_both = _take(by_smiles["inchikey"], smiles_codes[both])
+    in_key_both = _take(by_inchi["inchikey"], inchi_codes[both])
+    differ[both] = sm_key_both != in_key_both
     clash = np.full(n_rows, None, dtype=object)
     if differ.any():
         clash[differ] = (
@@ -678,12 +674,17 @@ def _structure_rows(
             + "' and InChI '"
             + _take(inchi_texts, inchi_codes[differ])
             + "' give different parents ("
-            + sm["inchikey"][differ]
+            + _take(by_smiles["inchikey"], smiles_codes[differ])
             + " vs "
-            + inn["inchikey"][differ]
+            + _take(by_inchi["inchikey"], inchi_codes[differ])
             + "); the SMILES was used"
         )
-    out["error"] = _join_parts(sm["error"], inn["error"], rescued, clash)
+    sm_err = _take(by_smiles["error"], smiles_codes)
+    in_err = np.full(n_rows, None, dtype=object)
+    has_inchi = inchi_codes >= 0
+    if has_inchi.any():
+        in_err[has_inchi] = _take(by_inchi["error"], inchi_codes[has_inchi])
+    out["error"] = _join_parts(sm_err, in_err, rescued, clash)
     return out
 
 
@@ -780,7 +781,9 @@ def _lookup_texts(kind: str, texts: Sequence[str]) -> list[tuple[str | None, ...
     return out
 
 
-def _lookup_unique(kind: str, texts: pd.Index, cache: IdentityCache | None) -> pd.DataFrame:
+def _lookup_unique(
+    kind: str, texts: pd.Index, cache: IdentityCache | None
+) -> dict[str, np.ndarray]:
     return _cached(kind, texts, lambda todo: _lookup_texts(kind, todo), cache)
 
 
@@ -790,10 +793,7 @@ def _parent_keys(
     """(parent SMILES, parent InChIKey) for database SMILES (object array, ``None`` allowed)."""
     codes, texts = _clean_codes(pd.Series(db_smiles, dtype=object), len(db_smiles))
     res = _standardize_unique("smiles", pd.Index(texts), cache)
-    return (
-        _take(res["parent_smiles"].to_numpy(dtype=object), codes),
-        _take(res["inchikey"].to_numpy(dtype=object), codes),
-    )
+    return _take(res["parent_smiles"], codes), _take(res["inchikey"], codes)
 
 
 def _lookup_on(
@@ -804,7 +804,7 @@ def _lookup_on(
     out: dict[str, np.ndarray] = {}
     for col in LOOKUP_COLUMNS:
         values = np.full(len(texts), None, dtype=object)
-        values[need] = res[col].to_numpy(dtype=object)
+        values[need] = res[col]
         out[col] = values
     return out
 
@@ -816,7 +816,7 @@ def _lookup_rows(
     codes = np.full(len(keys), -1, dtype=np.intp)
     codes[rows], unique = pd.factorize(keys[rows])
     res = _lookup_unique(kind, pd.Index(unique), cache)
-    return {c: _take(res[c].to_numpy(dtype=object), codes) for c in LOOKUP_COLUMNS}
+    return {c: _take(res[c], codes) for c in LOOKUP_COLUMNS}
 
 
 def _prepare_synonyms(synonyms: pd.DataFrame | None, cache: IdentityCache | None) -> pd.DataFrame:
@@ -953,7 +953,7 @@ def resolve_identities(
     syn_key_u = _take(syn["inchikey"].to_numpy(dtype=object), syn_pos)
     syn_smiles_u = _take(syn["parent_smiles"].to_numpy(dtype=object), syn_pos)
     syn_cas_u = _take(syn["cas"].to_numpy(dtype=object), syn_pos)
-    syn_hit_u = pd.notna(syn_key_u)
+    syn_hit_u = _present(syn_key_u)
 
     # --- CAS (per unique CAS): steward table first, then the database
     syn_by_cas = syn[syn["cas"].notna()].drop_duplicates("cas").set_index("cas")
@@ -965,7 +965,7 @@ def resolve_identities(
     cas_pos[~cas_ok_u] = -1
     cas_syn_key_u = _take(syn_by_cas["inchikey"].to_numpy(dtype=object), cas_pos)
     cas_syn_smiles_u = _take(syn_by_cas["parent_smiles"].to_numpy(dtype=object), cas_pos)
-    cas_db_u = _lookup_on("cas", cas_texts, cas_ok_u & pd.isna(cas_syn_key_u), cache)
+    cas_db_u = _lookup_on("cas", cas_texts, cas_ok_u & ~_present(cas_syn_key_u), cache)
     cas_par_smiles_u, cas_par_key_u = _parent_keys(cas_db_u["db_smiles"], cache)
     cas_key_u = _fill(cas_syn_key_u, cas_par_key_u)
     cas_smiles_u = _fill(cas_syn_smiles_u, cas_par_smiles_u)
@@ -976,13 +976,13 @@ def resolve_identities(
     name_inchikey_u = _fill(syn_key_u, name_par_key_u)
 
     # --- precedence per row: structure > synonym > CAS > name
-    has_struct = pd.notna(st["inchikey"])
+    has_struct = _present(st["inchikey"])
     syn_hit = _take_flag(syn_hit_u, name_codes)
     cas_key = _take(cas_key_u, cas_codes)
     name_par_key = _take(name_par_key_u, name_codes)
     by_syn = ~has_struct & syn_hit
-    by_cas = ~has_struct & ~by_syn & pd.notna(cas_key)
-    by_name = ~has_struct & ~by_syn & ~by_cas & pd.notna(name_par_key)
+    by_cas = ~has_struct & ~by_syn & _present(cas_key)
+    by_name = ~has_struct & ~by_syn & ~by_cas & _present(name_par_key)
     resolved_by = np.where(has_struct, st["structure_from"], None)
     resolved_by[by_syn] = "synonym"
     resolved_by[by_cas] = "cas"
@@ -998,21 +998,21 @@ def resolve_identities(
         if chosen.any():
             inchikey[chosen] = _take(key_u, codes[chosen])
             parent[chosen] = _take(smiles_u, codes[chosen])
-    has_key = pd.notna(inchikey)
+    has_key = _present(inchikey)
 
     # formula of the parent: from the structure result or a standardization of the parent SMILES
     formula = np.where(has_struct, st["formula"], None)
-    need_formula = ~has_struct & has_key & pd.notna(parent)
+    need_formula = ~has_struct & has_key & _present(parent)
     if need_formula.any():
         f_codes, f_texts = pd.factorize(parent[need_formula])
         f_res = _standardize_unique("smiles", pd.Index(f_texts), cache)
-        formula[need_formula] = _take(f_res["formula"].to_numpy(dtype=object), f_codes)
+        formula[need_formula] = _take(f_res["formula"], f_codes)
 
     # --- database entry of the parent, for a missing CAS or name
     entry = _lookup_rows("inchikey", inchikey, (~cas_ok | (name_codes < 0)) & has_key, cache)
     valid_cas_u = np.where(cas_ok_u, cas_texts, None)
     cas_out = _take(valid_cas_u, cas_codes)
-    from_syn = pd.isna(cas_out) & by_syn
+    from_syn = ~_present(cas_out) & by_syn
     cas_out[from_syn] = _take(syn_cas_u, name_codes[from_syn])
     cas_out = _fill(cas_out, entry["db_cas"])
     name_out = _fill(_take(names, name_codes), entry["db_name"])
@@ -1030,7 +1030,7 @@ def resolve_identities(
             ("unresolved:smiles:", smiles_texts, smiles_codes),
             ("unresolved:inchi:", inchi_texts, inchi_codes),
         ):
-            todo = pd.isna(unresolved) & (codes[nothing] >= 0)
+            todo = ~_present(unresolved) & (codes[nothing] >= 0)
             unresolved[todo] = prefix + _take(texts, codes[nothing][todo])
         compound_id[nothing] = unresolved
 
@@ -1063,11 +1063,10 @@ def resolve_identities(
         why_none = np.where(nothing & ~given_any, "no name, CAS, SMILES or InChI given", None)
         reasons = _join_parts(why_name, why_cas_bad, why_cas_db)
         unfound = np.full(n_rows, None, dtype=object)
-        has_reason = pd.notna(reasons)
+        has_reason = _present(reasons)
         unfound[has_reason] = "no structure found: " + reasons[has_reason]
         error = _join_parts(error, unfound, why_none)
 
-    cas_valid = pd.array(np.where(cas_missing, None, cas_ok), dtype="boolean")
     columns = {
         "compound_id": compound_id,
         "inchikey": inchikey,
@@ -1084,12 +1083,16 @@ def resolve_identities(
         "species_smiles": np.where(has_struct, st["input_smiles_canonical"], None),
         "error": error,
     }
-    out = pd.DataFrame(
-        {
-            c: pd.Series(cas_valid, index=index) if c == "cas_valid" else _object_series(v, index)
-            for c, v in columns.items()
-        },
-        index=index,
+    # one object block for the text columns (column-major, so pandas takes it without a copy)
+    text_columns = [c for c in columns if c != "cas_valid"]
+    block = np.empty((n_rows, len(text_columns)), dtype=object, order="F")
+    for j, c in enumerate(text_columns):
+        block[:, j] = columns[c]
+    out = pd.DataFrame(block, index=index, columns=text_columns, dtype=object, copy=False)
+    out.insert(
+        list(columns).index("cas_valid"),
+        "cas_valid",
+        pd.array(np.where(cas_missing, None, cas_ok), dtype="boolean"),
     )
     if cache is not None:
         cache.save()
