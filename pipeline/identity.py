@@ -1179,130 +1179,163 @@ def identity_findings(
     >>> f["rule"].tolist()
     ['cas_check_digit']
     """
+    # Masks run over all rows as arrays; messages are composed only on the rows a rule reports
+    # (a few hundred in a million), with the same pandas expressions row by row.
     index = resolved.index
+    n_rows = len(index)
     src = _aligned(source_id, index, "source_id")
-    vid = _aligned(value_id, index, "value_id")
-    key = resolved["inchikey"]
-    cas_given = _clean_text(resolved["cas_given"])
+    vid = _aligned(value_id, index, "value_id").to_numpy(dtype=object)
+    key_present = resolved["inchikey"].notna().to_numpy(dtype=bool)
+    cas_codes, cas_texts = _clean_codes(resolved["cas_given"], n_rows)
     valid = resolved["cas_valid"].astype("boolean")
     is_valid = valid.fillna(False).to_numpy(dtype=bool)
     frames: list[pd.DataFrame] = []
 
-    def add(rule: str, mask: pd.Series | np.ndarray, message: pd.Series) -> None:
-        m = np.asarray(mask, dtype=bool)
-        if m.any():
-            frames.append(
-                pd.DataFrame(
-                    {
-                        "rule": rule,
-                        "severity": FINDING_RULES[rule],
-                        "value_id": vid[m].to_numpy(),
-                        "message": message[m].astype(str).to_numpy(),
-                    }
-                )
+    def rows(mask: np.ndarray) -> pd.DataFrame:
+        return resolved[mask]
+
+    def cas_given(mask: np.ndarray) -> pd.Series:
+        """Clean given CAS text of the rows ``mask`` (string dtype, like ``_clean_text``)."""
+        return pd.Series(
+            pd.array(_take(cas_texts, cas_codes[mask]), dtype="string"), index=index[mask]
+        )
+
+    def add(rule: str, mask: np.ndarray, message: pd.Series) -> None:
+        """Report the rows ``mask``; ``message`` holds one text per reported row."""
+        frames.append(
+            pd.DataFrame(
+                {
+                    "rule": rule,
+                    "severity": FINDING_RULES[rule],
+                    "value_id": vid[mask],
+                    "message": message.astype(str).to_numpy(),
+                }
             )
+        )
 
     # cas_check_digit
     bad = valid.fillna(True).eq(False).to_numpy(dtype=bool)
     if bad.any():
-        _, _, formed, expected, _ = _cas_analysis(cas_given)
-        last = cas_given.str[-1]
+        given = cas_given(bad)
+        _, _, formed, expected, _ = _cas_analysis(given)
+        last = given.str[-1]
         msg = pd.Series(
             np.where(
                 formed,
                 "CAS "
-                + _quote(cas_given)
+                + _quote(given)
                 + " fails the check-digit rule (check digit "
                 + last.astype("string")
                 + ", expected "
-                + pd.Series(expected, index=index).astype(str)
+                + pd.Series(expected, index=given.index).astype(str)
                 + ")",
-                "CAS " + _quote(cas_given) + " is not a CAS Registry Number (form: 2-7 digits, "
+                "CAS " + _quote(given) + " is not a CAS Registry Number (form: 2-7 digits, "
                 "2 digits, 1 check digit, hyphen separated, e.g. 64-19-7)",
             ),
-            index=index,
+            index=given.index,
         )
         add("cas_check_digit", bad, msg)
 
-    # cas_structure_conflict
-    use = is_valid & key.notna().to_numpy()
+    # cas_structure_conflict: the row keys of a valid CAS plus the database's key for it
+    use = is_valid & key_present
     if use.any():
-        rows_long = pd.DataFrame({"cas": cas_given[use], "key": key[use], "source": src[use]})
-        db = resolved.loc[use, ["cas_inchikey"]].assign(cas=cas_given[use])
-        db = db[db["cas_inchikey"].notna()].drop_duplicates("cas")
-        db_long = pd.DataFrame({"cas": db["cas"], "key": db["cas_inchikey"], "source": "database"})
-        long = pd.concat([rows_long, db_long], ignore_index=True)
-        n_keys = long.groupby("cas")["key"].nunique()
-        conflicted = n_keys[n_keys > 1]
-        if len(conflicted):
-            listing = _list_by_key(long[long["cas"].isin(conflicted.index)], "cas", "key")
-            mask = use & cas_given.isin(conflicted.index).fillna(False).to_numpy(dtype=bool)
+        db_key = resolved["cas_inchikey"].to_numpy(dtype=object)[use]
+        in_db = pd.notna(db_key)
+        cas_of_row = cas_codes[use]
+        # the first database key seen per CAS, as drop_duplicates("cas") keeps it
+        db_cas, first = np.unique(cas_of_row[in_db], return_index=True)
+        key_codes, _ = pd.factorize(
+            np.concatenate([resolved["inchikey"].to_numpy(dtype=object)[use], db_key[in_db][first]])
+        )
+        pair_cas = np.concatenate([cas_of_row, db_cas])
+        conflicted = _codes_with_several(pair_cas, key_codes, len(cas_texts))
+        mask = use & _take_flag(conflicted, cas_codes)
+        if mask.any():
+            sub = rows(mask)
+            sub_cas = cas_given(mask)
+            rows_long = pd.DataFrame({"cas": sub_cas, "key": sub["inchikey"], "source": src[mask]})
+            db_keep = _take_flag(conflicted, db_cas)
+            db_long = pd.DataFrame(
+                {
+                    "cas": _take(cas_texts, db_cas[db_keep]),
+                    "key": db_key[in_db][first][db_keep],
+                    "source": "database",
+                }
+            )
+            long = pd.concat([rows_long, db_long], ignore_index=True)
+            n_keys = long.groupby("cas")["key"].nunique()
+            listing = _list_by_key(long, "cas", "key")
             msg = (
                 "CAS "
-                + cas_given
+                + sub_cas
                 + " stands for "
-                + cas_given.map(conflicted).astype("Int64").astype(str)
+                + sub_cas.map(n_keys).astype("Int64").astype(str)
                 + " different structures: "
-                + cas_given.map(listing)
+                + sub_cas.map(listing)
                 + "; this row has "
-                + key.astype(str)
+                + sub["inchikey"].astype(str)
             )
             add("cas_structure_conflict", mask, msg)
 
     # name_structure_mismatch
-    structural = resolved["resolved_by"].isin(["smiles", "inchi"])
+    structural = resolved["resolved_by"].isin(["smiles", "inchi"]).to_numpy(dtype=bool)
     nk = resolved["name_inchikey"]
-    mism = structural & nk.notna() & key.notna() & (nk != key)
+    mism = structural & nk.notna().to_numpy(dtype=bool) & key_present
     if mism.any():
+        mism[mism] = (nk[mism] != resolved["inchikey"][mism]).to_numpy(dtype=bool)
+    if mism.any():
+        sub = rows(mism)
         msg = (
             "name "
-            + _quote(_clean_text(resolved["name"]))
+            + _quote(_clean_text(sub["name"]))
             + " resolves to "
-            + nk.astype(str)
+            + sub["name_inchikey"].astype(str)
             + " but the given structure is "
-            + key.astype(str)
+            + sub["inchikey"].astype(str)
             + " ("
-            + resolved["smiles"].astype(str)
+            + sub["smiles"].astype(str)
             + ")"
         )
         add("name_structure_mismatch", mism, msg)
 
     # structure_multiple_cas: compared on the species as given, so that a salt's own CAS
     # (sodium acetate 127-09-3) is not taken for a second CAS of the parent acid
-    species = (
-        resolved["species_smiles"]
-        if "species_smiles" in resolved
-        else pd.Series(None, index=resolved.index, dtype=object)
-    )
-    use_species = use & species.notna().to_numpy(dtype=bool)
+    if "species_smiles" in resolved:
+        use_species = use & resolved["species_smiles"].notna().to_numpy(dtype=bool)
+    else:
+        use_species = np.zeros(n_rows, dtype=bool)
     if use_species.any():
-        rows_long = pd.DataFrame(
-            {"key": species[use_species], "cas": cas_given[use_species], "source": src[use_species]}
+        species_codes = np.full(n_rows, -1, dtype=np.intp)
+        species_codes[use_species], species_u = pd.factorize(
+            resolved["species_smiles"].to_numpy(dtype=object)[use_species]
         )
-        n_cas = rows_long.groupby("key")["cas"].nunique()
-        multi = n_cas[n_cas > 1]
-        if len(multi):
-            listing = _list_by_key(rows_long[rows_long["key"].isin(multi.index)], "key", "cas")
-            mask = use_species & species.isin(multi.index).to_numpy(dtype=bool)
+        multi = _codes_with_several(
+            species_codes[use_species], cas_codes[use_species], len(species_u)
+        )
+        mask = use_species & _take_flag(multi, species_codes)
+        if mask.any():
+            species = resolved["species_smiles"][mask]
+            rows_long = pd.DataFrame({"key": species, "cas": cas_given(mask), "source": src[mask]})
+            n_cas = rows_long.groupby("key")["cas"].nunique()
+            listing = _list_by_key(rows_long, "key", "cas")
             msg = (
                 "structure "
                 + species.astype(str)
                 + " is given under "
-                + species.map(multi).astype("Int64").astype(str)
+                + species.map(n_cas).astype("Int64").astype(str)
                 + " CAS numbers: "
                 + species.map(listing)
             )
             add("structure_multiple_cas", mask, msg)
 
     # unresolved_identity
-    unres = key.isna()
+    unres = ~key_present
     if unres.any():
+        sub = rows(unres)
         what = (
-            resolved["compound_id"]
-            .astype(object)
-            .where(resolved["compound_id"].notna(), "(nothing given)")
+            sub["compound_id"].astype(object).where(sub["compound_id"].notna(), "(nothing given)")
         )
-        why = _clean_text(resolved["error"]).str.replace("no structure found: ", "", regex=False)
+        why = _clean_text(sub["error"]).str.replace("no structure found: ", "", regex=False)
         msg = ("no structure for " + what.astype(str) + ": " + why).fillna(
             "no structure for " + what.astype(str)
         )
@@ -1313,6 +1346,17 @@ def identity_findings(
             {c: pd.Series(dtype="object") for c in ("rule", "severity", "value_id", "message")}
         )
     return pd.concat(frames, ignore_index=True)
+
+
+def _codes_with_several(
+    group_codes: np.ndarray, item_codes: np.ndarray, n_groups: int
+) -> np.ndarray:
+    """Per group code, whether its rows hold more than one distinct item code (-1 = no item)."""
+    has_item = item_codes >= 0
+    pairs = np.unique(
+        np.stack([group_codes[has_item], item_codes[has_item]]).astype(np.int64), axis=1
+    )
+    return np.bincount(pairs[0], minlength=n_groups) > 1
 
 
 # --------------------------------------------------------------------------------------------
