@@ -1419,67 +1419,102 @@ def infer_steps(frame: pd.DataFrame) -> pd.DataFrame:
     if missing_cols:
         raise ValueError(f"infer_steps: missing column(s) {missing_cols}; required: {need}")
     index = frame.index
+    n_rows = len(index)
     step = pd.array(frame["step"], dtype="Int64")
     pka = pd.to_numeric(frame["pka"], errors="coerce").to_numpy(dtype=float)
-    work = pd.DataFrame(
-        {
-            "compound_id": frame["compound_id"].astype(object).to_numpy(),
-            "source_id": frame["source_id"].astype(object).to_numpy(),
-            "t": pd.to_numeric(frame["temperature_k"], errors="coerce").round(2).to_numpy(),
-            "i": pd.to_numeric(frame["ionic_strength_molal"], errors="coerce").round(4).to_numpy(),
-            "step": step,
-            "pka": pka,
-        }
-    )
-    work["pos"] = np.arange(len(work))
-    keys = ["source_id", "compound_id", "t", "i"]
-    work["g"] = work.groupby(keys, dropna=False, sort=False).ngroup()
-    gb = work.groupby("g")
-    known = work["step"].notna()
-    n_rows = gb["pos"].transform("size")
-    n_known = known.groupby(work["g"]).transform("sum")
-    n_pka = work["pka"].notna().groupby(work["g"]).transform("sum")
-    dup = work.duplicated(["g", "pka"], keep=False) & work["pka"].notna()
-    any_dup = dup.groupby(work["g"]).transform("any")
-    rank = gb["pka"].rank(method="first")
 
-    steps_known = work.loc[known, ["compound_id", "step"]]
-    per_compound = steps_known.groupby("compound_id", dropna=False)["step"].agg(
-        ["nunique", "max", "min"]
+    # group codes: one integer per (source, compound, T rounded, I rounded), missing values
+    # forming their own group (like groupby dropna=False), all by factorizing each key once
+    compound = _group_codes(frame["compound_id"].to_numpy(dtype=object))
+    group = np.zeros(n_rows, dtype=np.int64)
+    span = 1  # number of distinct values ``group`` can take so far
+    for codes in (
+        _group_codes(frame["source_id"].to_numpy(dtype=object)),
+        compound,
+        _group_codes(pd.to_numeric(frame["temperature_k"], errors="coerce").round(2).to_numpy()),
+        _group_codes(
+            pd.to_numeric(frame["ionic_strength_molal"], errors="coerce").round(4).to_numpy()
+        ),
+    ):
+        n_values = int(codes.max(initial=0)) + 1
+        if span * n_values >= 2**62:  # keep the combined code inside int64
+            group = _group_codes(group)
+            span = int(group.max(initial=0)) + 1
+        group = group * n_values + codes
+        span *= n_values
+    group = _group_codes(group)
+    n_groups = int(group.max(initial=-1)) + 1
+
+    known = ~step.isna()
+    has_pka = ~np.isnan(pka)
+    n_rows_g = np.bincount(group, minlength=n_groups)
+    n_rows_of = n_rows_g[group]
+    n_known = np.bincount(group, weights=known, minlength=n_groups)[group]
+    n_pka = np.bincount(group, weights=has_pka, minlength=n_groups)[group]
+    # a pKa value met twice in its group
+    pair = _group_codes(group * (n_rows + 1) + _group_codes(pka))
+    dup = (np.bincount(pair)[pair] > 1) & has_pka
+    any_dup = np.bincount(group, weights=dup, minlength=n_groups)[group] > 0
+    # rank of the pKa within its group (ascending, ties by row order); it is used only in
+    # groups whose pKa values are all present and distinct
+    order = np.lexsort((pka, group))
+    first_of_group = np.concatenate([[0], np.cumsum(n_rows_g)[:-1]]) if n_groups else np.zeros(0)
+    rank = np.empty(n_rows, dtype=np.int64)
+    rank[order] = np.arange(n_rows) - first_of_group[group[order]] + 1
+
+    # known steps per compound: number of distinct steps, highest and lowest
+    n_compounds = int(compound.max(initial=-1)) + 1
+    k_comp = compound[known]
+    k_step = step[known].to_numpy(dtype=np.int64)
+    k_order = np.lexsort((k_step, k_comp))
+    k_comp, k_step = k_comp[k_order], k_step[k_order]
+    new_compound = np.r_[True, k_comp[1:] != k_comp[:-1]] if len(k_comp) else np.zeros(0, bool)
+    new_step = (
+        new_compound | np.r_[True, k_step[1:] != k_step[:-1]] if len(k_comp) else new_compound
     )
-    c_id = work["compound_id"]
-    k_n = c_id.map(per_compound["nunique"]).fillna(0).astype(int)
-    k_max = c_id.map(per_compound["max"]).astype("Float64")
-    k_only = c_id.map(per_compound["min"]).astype("Float64")
+    k_n_c = np.bincount(k_comp, weights=new_step, minlength=n_compounds).astype(int)
+    k_max_c = np.full(n_compounds, np.nan)
+    k_min_c = np.full(n_compounds, np.nan)
+    last_of_compound = np.r_[new_compound[1:], True] if len(k_comp) else new_compound
+    k_min_c[k_comp[new_compound]] = k_step[new_compound]
+    k_max_c[k_comp[last_of_compound]] = k_step[last_of_compound]
+    k_n = k_n_c[compound]
+    k_max = k_max_c[compound]
+    k_only = k_min_c[compound]
 
     # largest group of the same compound anywhere: a bigger group elsewhere means this one
     # may be a subset of the steps
-    widest = n_rows.groupby(c_id, dropna=False).transform("max")
+    widest_c = np.zeros(n_compounds, dtype=np.int64)
+    np.maximum.at(widest_c, compound, n_rows_of)
+    widest = widest_c[compound]
     all_missing = n_known == 0
-    clean = all_missing & (n_pka == n_rows) & ~any_dup
-    lone = n_rows == 1
-    covers = (widest <= n_rows) & ((k_n == 0) | (k_max <= n_rows).fillna(True))
+    clean = all_missing & (n_pka == n_rows_of) & ~any_dup
+    lone = n_rows_of == 1
+    # a compound without a known step has k_max NaN: it never limits the group
+    covers = (widest <= n_rows_of) & ((k_n == 0) | ~(k_max > n_rows_of))
     rule_rank = clean & ~lone & covers
     rule_lone_free = clean & lone & (k_n == 0) & (widest == 1)
     rule_lone_known = clean & lone & (k_n == 1) & (widest == 1)
-    inferred = (rule_rank | rule_lone_free | rule_lone_known).to_numpy(dtype=bool)
+    inferred = rule_rank | rule_lone_free | rule_lone_known
 
-    value = np.where(
-        rule_lone_known, k_only.fillna(0).to_numpy(dtype=float), rank.fillna(0).to_numpy()
-    )
+    value = np.where(rule_lone_known, np.nan_to_num(k_only), rank)
     filled = step.copy()
     filled[inferred] = value[inferred].astype(np.int64)
 
-    missing_step = ~known.to_numpy(dtype=bool)
-    note = np.select(
+    missing_step = ~known
+    reason = np.select(
         [
             ~missing_step | inferred,
-            ~all_missing.to_numpy(),
-            work["pka"].isna().to_numpy() | (n_pka != n_rows).to_numpy(),
-            any_dup.to_numpy(),
-            (clean & lone & (k_n > 1)).to_numpy(),
-            (clean & (widest > n_rows)).to_numpy(),
+            ~all_missing,
+            ~has_pka | (n_pka != n_rows_of),
+            any_dup,
+            clean & lone & (k_n > 1),
+            clean & (widest > n_rows_of),
         ],
+        np.arange(6),
+        default=6,
+    )
+    notes = np.array(
         [
             None,
             "other rows of this source, compound and condition carry steps; a partial set is not completed",
@@ -1487,14 +1522,20 @@ def infer_steps(frame: pd.DataFrame) -> pd.DataFrame:
             "repeated pKa values in this group; their order is ambiguous",
             "single value without step; the compound has several known steps elsewhere",
             "another source or condition lists more values for this compound; the group may be a subset",
+            "the compound has a higher known step elsewhere than this group holds; the group may be a subset",
         ],
-        default="the compound has a higher known step elsewhere than this group holds; the group may be a subset",
+        dtype=object,
     )
     return pd.DataFrame(
         {
             "step": pd.Series(filled, index=index, dtype="Int64"),
             "step_inferred": pd.Series(inferred, index=index, dtype=bool),
-            "step_note": pd.Series(note, index=index, dtype=object),
+            "step_note": pd.Series(notes[reason], index=index, dtype=object),
         },
         index=index,
     )
+
+
+def _group_codes(values: np.ndarray) -> np.ndarray:
+    """Codes 0..k-1 of the distinct values, missing values sharing one code of their own."""
+    return pd.factorize(values, use_na_sentinel=False)[0].astype(np.int64, copy=False)
