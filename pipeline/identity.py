@@ -1455,12 +1455,6 @@ def infer_steps(frame: pd.DataFrame) -> pd.DataFrame:
     pair = _group_codes(group * (n_rows + 1) + _group_codes(pka))
     dup = (np.bincount(pair)[pair] > 1) & has_pka
     any_dup = np.bincount(group, weights=dup, minlength=n_groups)[group] > 0
-    # rank of the pKa within its group (ascending, ties by row order); it is used only in
-    # groups whose pKa values are all present and distinct
-    order = np.lexsort((pka, group))
-    first_of_group = np.concatenate([[0], np.cumsum(n_rows_g)[:-1]]) if n_groups else np.zeros(0)
-    rank = np.empty(n_rows, dtype=np.int64)
-    rank[order] = np.arange(n_rows) - first_of_group[group[order]] + 1
 
     # known steps per compound: number of distinct steps, highest and lowest
     n_compounds = int(compound.max(initial=-1)) + 1
@@ -1485,7 +1479,9 @@ def infer_steps(frame: pd.DataFrame) -> pd.DataFrame:
     # largest group of the same compound anywhere: a bigger group elsewhere means this one
     # may be a subset of the steps
     widest_c = np.zeros(n_compounds, dtype=np.int64)
-    np.maximum.at(widest_c, compound, n_rows_of)
+    compound_of_group = np.zeros(n_groups, dtype=np.int64)
+    compound_of_group[group] = compound
+    np.maximum.at(widest_c, compound_of_group, n_rows_g)
     widest = widest_c[compound]
     all_missing = n_known == 0
     clean = all_missing & (n_pka == n_rows_of) & ~any_dup
@@ -1496,6 +1492,17 @@ def infer_steps(frame: pd.DataFrame) -> pd.DataFrame:
     rule_lone_free = clean & lone & (k_n == 0) & (widest == 1)
     rule_lone_known = clean & lone & (k_n == 1) & (widest == 1)
     inferred = rule_rank | rule_lone_free | rule_lone_known
+
+    # rank of the pKa within its group (ascending), needed only where rule 2 ranks a group
+    # (all its pKa values present and distinct; a lone value has rank 1)
+    rank = np.ones(n_rows, dtype=np.int64)
+    ranked = np.flatnonzero(rule_rank)
+    if len(ranked):
+        order = ranked[np.lexsort((pka[ranked], group[ranked]))]
+        sorted_group = group[order]
+        starts = np.flatnonzero(np.r_[True, sorted_group[1:] != sorted_group[:-1]])
+        sizes = np.diff(np.r_[starts, len(order)])
+        rank[order] = np.arange(len(order)) - np.repeat(starts, sizes) + 1
 
     value = np.where(rule_lone_known, np.nan_to_num(k_only), rank)
     filled = step.copy()
