@@ -375,6 +375,13 @@ def cache_version() -> str:
     )
 
 
+def _none_for_null(values: np.ndarray) -> np.ndarray:
+    """Object array of a DuckDB ``fetchnumpy`` column, ``None`` where the value was NULL."""
+    out = np.asarray(np.ma.getdata(values), dtype=object).copy()
+    out[np.ma.getmaskarray(values)] = None
+    return out
+
+
 def _check_kind(kind: str) -> tuple[str, ...]:
     try:
         return CACHE_KINDS[kind]
@@ -441,17 +448,27 @@ class IdentityCache:
             self._load()
 
     def _load(self) -> None:
+        path = str(self.path)
         with duckdb.connect() as con:
-            rows = con.execute("SELECT * FROM read_parquet(?)", [str(self.path)]).df()
-        current = rows["version"] == self.version
-        self.stale_rows = int((~current).sum())
-        rows = rows[current]
-        for kind, cols in CACHE_KINDS.items():
-            part = rows[rows["kind"] == kind]
-            frame = part.set_index("text")[list(cols)].astype("object")
-            frame = frame.where(frame.notna(), None)
-            frame.index.name = "text"
-            self._frames[kind] = frame[~frame.index.duplicated(keep="last")]
+            # only rows of this version, each kind with its own columns, in file order
+            self.stale_rows = con.execute(
+                "SELECT count(*) FROM read_parquet(?) WHERE version IS DISTINCT FROM ?",
+                [path, self.version],
+            ).fetchone()[0]
+            con.execute(
+                "CREATE TEMP TABLE current_rows AS SELECT * FROM read_parquet(?) WHERE version = ?",
+                [path, self.version],
+            )
+            for kind, cols in CACHE_KINDS.items():
+                select = ", ".join(f'"{c}"' for c in ("text", *cols))
+                got = con.execute(
+                    f"SELECT {select} FROM current_rows WHERE kind = ?", [kind]
+                ).fetchnumpy()
+                text = pd.Index(_none_for_null(got["text"]), name="text")
+                frame = pd.DataFrame(
+                    {c: _none_for_null(got[c]) for c in cols}, index=text, dtype=object
+                )
+                self._frames[kind] = frame[~frame.index.duplicated(keep="last")]
 
     def __len__(self) -> int:
         return sum(len(f) for f in self._frames.values())
