@@ -155,6 +155,8 @@ def _clean_codes(
     # str.split() splits at runs of the characters re's \s matches (str.isspace), and drops
     # them at both ends: the same as re.sub(r"\s+", " ", text).strip(), only faster
     cleaned[:] = [" ".join(text.split()) or None for text in raw_unique]
+    if not np.not_equal(cleaned, raw_unique).any():  # already clean (the usual case)
+        return raw_codes.astype(np.intp, copy=False), raw_unique.astype(object, copy=False)
     # distinct raw texts may clean to one text ("a  b", "a b"): factorize once more
     unique_codes, unique = pd.factorize(cleaned)
     codes = np.append(unique_codes, -1)[raw_codes]
@@ -488,15 +490,15 @@ class IdentityCache:
         positions = self._positions(kind, texts)
         return self._frames[kind].iloc[positions[positions >= 0]]
 
-    def _take(self, kind: str, texts: pd.Index) -> tuple[dict[str, np.ndarray], np.ndarray]:
-        """(columns, found): the kind's result columns for ``texts`` as object arrays
-        (``None`` where absent) and whether each text was in the cache."""
-        positions = self._positions(kind, texts)
+    def _columns(self, kind: str) -> dict[str, np.ndarray]:
+        """The kind's stored columns as object arrays, each with one ``None`` appended (the
+        slot that absent texts point to)."""
         stored = self._values.get(kind)
         if stored is None:
             frame = self._frames[kind]
-            stored = self._values[kind] = {c: frame[c].to_numpy(dtype=object) for c in frame}
-        return {c: _take(v, positions) for c, v in stored.items()}, positions >= 0
+            stored = {c: np.append(frame[c].to_numpy(dtype=object), None) for c in frame}
+            self._values[kind] = stored
+        return stored
 
     def store(self, kind: str, results: pd.DataFrame) -> None:
         """Add results (indexed by text, with the kind's columns); later rows win."""
@@ -548,20 +550,44 @@ class IdentityCache:
         self._dirty = False
 
 
+class _Results:
+    """Results for unique texts: column ``c`` of text ``i`` is ``values[c][slot[i]]``.
+
+    The last element of every ``values`` array is ``None``; it stands for "no text". Rows
+    coded against the texts (see :func:`_clean_codes`) are served by one take through
+    :meth:`rows`, without first building a per-text array.
+    """
+
+    def __init__(self, values: dict[str, np.ndarray], slot: np.ndarray) -> None:
+        self.values = values
+        self.slot = slot
+        self.none_slot = len(next(iter(values.values()))) - 1
+
+    def __getitem__(self, col: str) -> np.ndarray:
+        """Column ``col`` per text."""
+        return self.values[col][self.slot]
+
+    def rows(self, col: str, codes: np.ndarray) -> np.ndarray:
+        """Column ``col`` per row, for row codes into the texts (``None`` where -1)."""
+        return self.values[col][np.append(self.slot, self.none_slot)[codes]]
+
+
 def _cached(
     kind: str,
     texts: pd.Index,
     compute: Callable[[list[str]], list[tuple[str | None, ...]]],
     cache: IdentityCache | None,
-) -> dict[str, np.ndarray]:
+) -> _Results:
     """Results for ``texts`` (unique, none missing): cache hits plus ``compute(list_of_texts)``
-    for the rest, as one object array per result column, aligned with ``texts``."""
+    for the rest. A warm cache answers with one index lookup and no copy of its columns."""
     cols = list(CACHE_KINDS[kind])
     if cache is not None:
-        values, found = cache._take(kind, texts)
+        values = cache._columns(kind)
+        slot = cache._positions(kind, texts)
     else:
-        values = {c: np.full(len(texts), None, dtype=object) for c in cols}
-        found = np.zeros(len(texts), dtype=bool)
+        values = {c: np.array([None], dtype=object) for c in cols}
+        slot = np.full(len(texts), -1, dtype=np.intp)
+    found = slot >= 0
     todo = texts[~found]
     if len(todo):
         rows = compute(list(todo))
@@ -569,9 +595,14 @@ def _cached(
         new = new.where(new.notna(), None)
         if cache is not None:
             cache.store(kind, new)
-        for c in cols:
-            values[c][~found] = new[c].to_numpy(dtype=object)
-    return values
+        # computed results go between the known values and the final None slot
+        first_new = len(values[cols[0]]) - 1
+        values = {
+            c: np.concatenate([values[c][:-1], new[c].to_numpy(dtype=object), [None]]) for c in cols
+        }
+        slot = slot.copy()
+        slot[~found] = first_new + np.arange(len(todo))
+    return _Results(values, slot)
 
 
 # --------------------------------------------------------------------------------------------
@@ -649,7 +680,7 @@ def _standardize_parallel(
 
 def _standardize_unique(
     kind: str, texts: pd.Index, cache: IdentityCache | None, n_jobs: int | None = None
-) -> dict[str, np.ndarray]:
+) -> _Results:
     return _cached(kind, texts, lambda todo: _standardize_parallel(kind, todo, n_jobs), cache)
 
 
@@ -669,10 +700,10 @@ def _structure_rows(
     sm_ok = _take_flag(_present(by_smiles["inchikey"]), smiles_codes)
     in_ok = _take_flag(_present(by_inchi["inchikey"]), inchi_codes)
     use_inchi = ~sm_ok & in_ok
-    out = {c: _take(by_smiles[c], smiles_codes) for c in cols}
+    out = {c: by_smiles.rows(c, smiles_codes) for c in cols}
     if use_inchi.any():
         for c in cols:
-            out[c][use_inchi] = _take(by_inchi[c], inchi_codes[use_inchi])
+            out[c][use_inchi] = by_inchi.rows(c, inchi_codes[use_inchi])
     out["structure_from"] = np.where(sm_ok, "smiles", np.where(use_inchi, "inchi", None))
 
     n_rows = len(smiles_codes)
@@ -680,8 +711,8 @@ def _structure_rows(
     rescued[(smiles_codes >= 0) & ~sm_ok & use_inchi] = "the structure was taken from the InChI"
     both = sm_ok & in_ok
     differ = np.zeros(n_rows, dtype=bool)
-    sm_key_both = _take(by_smiles["inchikey"], smiles_codes[both])
-    in_key_both = _take(by_inchi["inchikey"], inchi_codes[both])
+    sm_key_both = by_smiles.rows("inchikey", smiles_codes[both])
+    in_key_both = by_inchi.rows("inchikey", inchi_codes[both])
     differ[both] = sm_key_both != in_key_both
     clash = np.full(n_rows, None, dtype=object)
     if differ.any():
@@ -691,16 +722,16 @@ def _structure_rows(
             + "' and InChI '"
             + _take(inchi_texts, inchi_codes[differ])
             + "' give different parents ("
-            + _take(by_smiles["inchikey"], smiles_codes[differ])
+            + by_smiles.rows("inchikey", smiles_codes[differ])
             + " vs "
-            + _take(by_inchi["inchikey"], inchi_codes[differ])
+            + by_inchi.rows("inchikey", inchi_codes[differ])
             + "); the SMILES was used"
         )
-    sm_err = _take(by_smiles["error"], smiles_codes)
+    sm_err = by_smiles.rows("error", smiles_codes)
     in_err = np.full(n_rows, None, dtype=object)
     has_inchi = inchi_codes >= 0
     if has_inchi.any():
-        in_err[has_inchi] = _take(by_inchi["error"], inchi_codes[has_inchi])
+        in_err[has_inchi] = by_inchi.rows("error", inchi_codes[has_inchi])
     out["error"] = _join_parts(sm_err, in_err, rescued, clash)
     return out
 
@@ -798,9 +829,7 @@ def _lookup_texts(kind: str, texts: Sequence[str]) -> list[tuple[str | None, ...
     return out
 
 
-def _lookup_unique(
-    kind: str, texts: pd.Index, cache: IdentityCache | None
-) -> dict[str, np.ndarray]:
+def _lookup_unique(kind: str, texts: pd.Index, cache: IdentityCache | None) -> _Results:
     return _cached(kind, texts, lambda todo: _lookup_texts(kind, todo), cache)
 
 
@@ -810,7 +839,7 @@ def _parent_keys(
     """(parent SMILES, parent InChIKey) for database SMILES (object array, ``None`` allowed)."""
     codes, texts = _clean_codes(pd.Series(db_smiles, dtype=object), len(db_smiles))
     res = _standardize_unique("smiles", pd.Index(texts), cache)
-    return _take(res["parent_smiles"], codes), _take(res["inchikey"], codes)
+    return res.rows("parent_smiles", codes), res.rows("inchikey", codes)
 
 
 def _lookup_on(
@@ -833,7 +862,7 @@ def _lookup_rows(
     codes = np.full(len(keys), -1, dtype=np.intp)
     codes[rows], unique = pd.factorize(keys[rows])
     res = _lookup_unique(kind, pd.Index(unique), cache)
-    return {c: _take(res[c], codes) for c in LOOKUP_COLUMNS}
+    return {c: res.rows(c, codes) for c in LOOKUP_COLUMNS}
 
 
 def _prepare_synonyms(synonyms: pd.DataFrame | None, cache: IdentityCache | None) -> pd.DataFrame:
@@ -1023,7 +1052,7 @@ def resolve_identities(
     if need_formula.any():
         f_codes, f_texts = pd.factorize(parent[need_formula])
         f_res = _standardize_unique("smiles", pd.Index(f_texts), cache)
-        formula[need_formula] = _take(f_res["formula"], f_codes)
+        formula[need_formula] = f_res.rows("formula", f_codes)
 
     # --- database entry of the parent, for a missing CAS or name
     entry = _lookup_rows("inchikey", inchikey, (~cas_ok | (name_codes < 0)) & has_key, cache)
