@@ -705,6 +705,7 @@ def _structure_rows(
         for c in cols:
             out[c][use_inchi] = by_inchi.rows(c, inchi_codes[use_inchi])
     out["structure_from"] = np.where(sm_ok, "smiles", np.where(use_inchi, "inchi", None))
+    out["has_structure"] = sm_ok | use_inchi
 
     n_rows = len(smiles_codes)
     rescued = np.full(n_rows, None, dtype=object)
@@ -1022,13 +1023,10 @@ def resolve_identities(
     name_inchikey_u = _fill(syn_key_u, name_par_key_u)
 
     # --- precedence per row: structure > synonym > CAS > name
-    has_struct = _present(st["inchikey"])
-    syn_hit = _take_flag(syn_hit_u, name_codes)
-    cas_key = _take(cas_key_u, cas_codes)
-    name_par_key = _take(name_par_key_u, name_codes)
-    by_syn = ~has_struct & syn_hit
-    by_cas = ~has_struct & ~by_syn & _present(cas_key)
-    by_name = ~has_struct & ~by_syn & ~by_cas & _present(name_par_key)
+    has_struct = st["has_structure"]
+    by_syn = ~has_struct & _take_flag(syn_hit_u, name_codes)
+    by_cas = ~has_struct & ~by_syn & _take_flag(_present(cas_key_u), cas_codes)
+    by_name = ~has_struct & ~by_syn & ~by_cas & _take_flag(_present(name_par_key_u), name_codes)
     resolved_by = np.where(has_struct, st["structure_from"], None)
     resolved_by[by_syn] = "synonym"
     resolved_by[by_cas] = "cas"
@@ -1044,7 +1042,7 @@ def resolve_identities(
         if chosen.any():
             inchikey[chosen] = _take(key_u, codes[chosen])
             parent[chosen] = _take(smiles_u, codes[chosen])
-    has_key = _present(inchikey)
+    has_key = has_struct | by_syn | by_cas | by_name
 
     # formula of the parent: from the structure result or a standardization of the parent SMILES
     formula = np.where(has_struct, st["formula"], None)
@@ -1058,10 +1056,11 @@ def resolve_identities(
     entry = _lookup_rows("inchikey", inchikey, (~cas_ok | (name_codes < 0)) & has_key, cache)
     valid_cas_u = np.where(cas_ok_u, cas_texts, None)
     cas_out = _take(valid_cas_u, cas_codes)
-    from_syn = ~_present(cas_out) & by_syn
+    from_syn = ~cas_ok & by_syn
     cas_out[from_syn] = _take(syn_cas_u, name_codes[from_syn])
     cas_out = _fill(cas_out, entry["db_cas"])
-    name_out = _fill(_take(names, name_codes), entry["db_name"])
+    name_out = _take(names, name_codes)
+    name_out[name_codes < 0] = entry["db_name"][name_codes < 0]
     name_out = _fill(name_out, _take(cas_db_u["db_name"], cas_codes))
 
     # --- stable id and reasons for rows without a structure
@@ -1124,7 +1123,7 @@ def resolve_identities(
         "cas_valid": None,
         "cas_given": _take(cas_texts, cas_codes),
         "name_inchikey": _take(name_inchikey_u, name_codes),
-        "cas_inchikey": cas_key,
+        "cas_inchikey": _take(cas_key_u, cas_codes),
         # the species as the row gave it (salt or charged form kept), for CAS comparisons
         "species_smiles": np.where(has_struct, st["input_smiles_canonical"], None),
         "error": error,
