@@ -224,12 +224,6 @@ def _join_parts(*parts: np.ndarray) -> np.ndarray:
     return joined
 
 
-def _join_messages(*parts: pd.Series) -> pd.Series:
-    """Join message Series with '; ', skipping missing or empty parts; all missing -> None."""
-    arrays = [p.astype("string").to_numpy(dtype=object, na_value=None) for p in parts]
-    return pd.Series(_join_parts(*arrays), index=parts[0].index, dtype=object)
-
-
 def _quote(s: pd.Series) -> pd.Series:
     return "'" + s.astype("string") + "'"
 
