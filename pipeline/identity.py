@@ -42,6 +42,7 @@ from __future__ import annotations
 
 import multiprocessing
 import os
+import re
 import tempfile
 from collections.abc import Callable, Sequence
 from concurrent.futures import ProcessPoolExecutor
@@ -85,6 +86,15 @@ STRUCTURE_COLUMNS: tuple[str, ...] = (
     "input_smiles_canonical",
     "error",
 )
+#: Columns returned by :func:`standardize_structures`.
+STRUCTURE_RESULT_COLUMNS: tuple[str, ...] = (
+    "parent_smiles",
+    "inchikey",
+    "formula",
+    "input_smiles_canonical",
+    "structure_from",
+    "error",
+)
 LOOKUP_COLUMNS: tuple[str, ...] = ("db_smiles", "db_cas", "db_name", "error")
 #: Cache kinds and the result columns each one stores.
 CACHE_KINDS: dict[str, tuple[str, ...]] = {
@@ -110,6 +120,7 @@ PARALLEL_MIN_UNIQUE = 20_000
 _CHUNK = 2_000
 # First part 2-7 digits without a leading zero, then 2 digits, then the check digit [3].
 _CAS_PATTERN = r"[1-9]\d{1,6}-\d{2}-\d"
+_CAS_FULL = re.compile(_CAS_PATTERN)
 _CAS_DIGITS = 10  # at most 7 + 2 + 1 digits
 _LOOKUP_ERRORS = (ValueError, KeyError, IndexError, TypeError)
 
@@ -117,6 +128,63 @@ _LOOKUP_ERRORS = (ValueError, KeyError, IndexError, TypeError)
 # --------------------------------------------------------------------------------------------
 # text helpers
 # --------------------------------------------------------------------------------------------
+# Identity columns repeat the same few texts many times (one SMILES per compound, thousands of
+# rows each), so text work runs on the unique values of a column and is broadcast back through
+# integer codes: ``codes`` holds, per row, a position in the unique values, or -1 for missing.
+
+
+def _clean_codes(
+    values: pd.Series | Sequence[object] | None, n_rows: int
+) -> tuple[np.ndarray, np.ndarray]:
+    """Per-row codes into the unique cleaned texts (whitespace collapsed and stripped).
+
+    Missing, NaN and empty texts get code -1. The unique texts (object array) are in order of
+    first appearance among the rows, as ``pd.unique`` of the cleaned column would give them.
+    """
+    if values is None:
+        return np.full(n_rows, -1, dtype=np.intp), np.empty(0, dtype=object)
+    raw = values.to_numpy(dtype=object) if isinstance(values, pd.Series) else None
+    if raw is None:
+        raw = np.empty(len(values), dtype=object)
+        raw[:] = list(values)
+    if pd.api.types.infer_dtype(raw, skipna=True) not in ("string", "empty"):
+        # non-text cells (numbers from a spreadsheet) are turned into text the pandas way
+        raw = pd.Series(raw, dtype=object).astype("string").to_numpy(dtype=object, na_value=None)
+    raw_codes, raw_unique = pd.factorize(raw)
+    cleaned = np.empty(len(raw_unique), dtype=object)
+    # str.split() splits at runs of the characters re's \s matches (str.isspace), and drops
+    # them at both ends: the same as re.sub(r"\s+", " ", text).strip(), only faster
+    cleaned[:] = [" ".join(text.split()) or None for text in raw_unique]
+    if not np.not_equal(cleaned, raw_unique).any():  # already clean (the usual case)
+        return raw_codes.astype(np.intp, copy=False), raw_unique.astype(object, copy=False)
+    # distinct raw texts may clean to one text ("a  b", "a b"): factorize once more
+    unique_codes, unique = pd.factorize(cleaned)
+    codes = np.append(unique_codes, -1)[raw_codes]
+    return codes.astype(np.intp, copy=False), unique.astype(object, copy=False)
+
+
+def _take(values: np.ndarray, codes: np.ndarray) -> np.ndarray:
+    """``values[codes]`` as an object array, ``None`` where the code is -1."""
+    padded = np.empty(len(values) + 1, dtype=object)
+    padded[:-1] = values
+    padded[-1] = None
+    return padded[codes]
+
+
+def _take_flag(flags: np.ndarray, codes: np.ndarray) -> np.ndarray:
+    """``flags[codes]`` as a bool array, False where the code is -1."""
+    return np.append(np.asarray(flags, dtype=bool), False)[codes]
+
+
+def _present(values: np.ndarray) -> np.ndarray:
+    """True where an object array holds a value: the arrays here mark missing by ``None`` only
+    (a plain comparison, several times faster than ``pd.notna`` on object arrays)."""
+    return np.not_equal(values, None)
+
+
+def _fill(values: np.ndarray, fallback: np.ndarray) -> np.ndarray:
+    """``values`` with its missing entries taken from ``fallback`` (both object arrays)."""
+    return np.where(_present(values), values, fallback)
 
 
 def _clean_text(
@@ -125,20 +193,35 @@ def _clean_text(
     """Strip and collapse whitespace; missing, NaN and empty text become ``<NA>`` (string dtype)."""
     if values is None:
         return pd.Series(pd.NA, index=index, dtype="string")
-    s = values if isinstance(values, pd.Series) else pd.Series(list(values), index=index)
-    s = s.astype("object").where(s.notna(), None).astype("string")
-    s = s.str.replace(r"\s+", " ", regex=True).str.strip()
-    return s.mask(s == "")
+    if isinstance(values, pd.Series):
+        index = values.index
+    codes, unique = _clean_codes(values, len(values))
+    return pd.Series(pd.array(_take(unique, codes), dtype="string"), index=index)
 
 
-def _join_messages(*parts: pd.Series) -> pd.Series:
-    """Join message Series with '; ', skipping missing or empty parts; all missing -> None."""
-    acc = pd.Series(pd.NA, index=parts[0].index, dtype="string")
+def _has_text(part: np.ndarray) -> np.ndarray:
+    """True where a message part holds text other than whitespace."""
+    present = _present(part)
+    if present.any():
+        codes, unique = pd.factorize(part[present])
+        nonblank = np.array([bool(str(text).strip()) for text in unique], dtype=bool)
+        present[present] = nonblank[codes]
+    return present
+
+
+def _join_parts(*parts: np.ndarray) -> np.ndarray:
+    """Join message arrays with '; ', skipping missing or blank parts; all missing -> None."""
+    joined = np.full(len(parts[0]), None, dtype=object)
+    has = np.zeros(len(parts[0]), dtype=bool)
     for part in parts:
-        p = part.astype("string")
-        p = p.mask(p.str.strip() == "")
-        acc = acc.where(p.isna(), acc + "; " + p).fillna(p)
-    return _none_object(acc)
+        valid = _has_text(part)
+        both = valid & has
+        if both.any():
+            joined[both] = joined[both] + "; " + part[both]
+        first = valid & ~has
+        joined[first] = part[first]
+        has |= valid
+    return joined
 
 
 def _quote(s: pd.Series) -> pd.Series:
@@ -148,6 +231,11 @@ def _quote(s: pd.Series) -> pd.Series:
 def _none_object(s: pd.Series) -> pd.Series:
     """Object Series with ``None`` for every missing value (for plain-Python consumers)."""
     return s.astype("object").where(s.notna(), None)
+
+
+def _object_series(values: np.ndarray, index: pd.Index) -> pd.Series:
+    """Object Series of ``values`` (pandas would otherwise infer its string dtype)."""
+    return pd.Series(values, index=index, dtype=object)
 
 
 # --------------------------------------------------------------------------------------------
@@ -182,17 +270,13 @@ def cas_is_missing(cas: pd.Series) -> np.ndarray:
     return _clean_text(cas).isna().to_numpy(dtype=bool)
 
 
-def _cas_analysis(
-    cas: pd.Series,
-) -> tuple[pd.Series, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """Return (clean text, missing, well-formed, expected check digit (-1 if not formed), ok)."""
-    s = _clean_text(cas)
-    missing = s.isna().to_numpy(dtype=bool)
-    formed = s.str.fullmatch(_CAS_PATTERN).fillna(False).to_numpy(dtype=bool)
-    expected = np.full(len(s), -1, dtype=np.int64)
-    ok = np.zeros(len(s), dtype=bool)
+def _cas_rule(texts: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(well-formed, expected check digit (-1 if not formed), ok) for clean CAS texts."""
+    formed = np.array([_CAS_FULL.fullmatch(t) is not None for t in texts], dtype=bool)
+    expected = np.full(len(texts), -1, dtype=np.int64)
+    ok = np.zeros(len(texts), dtype=bool)
     if formed.any():
-        digits = s[formed].str.replace("-", "", regex=False).str.zfill(_CAS_DIGITS)
+        digits = [t.replace("-", "").zfill(_CAS_DIGITS) for t in texts[formed]]
         arr = np.frombuffer("".join(digits).encode("ascii"), dtype=np.uint8)
         arr = arr.reshape(-1, _CAS_DIGITS).astype(np.int64) - ord("0")
         # position 1 is the digit just left of the check digit; zero padding adds nothing
@@ -200,7 +284,24 @@ def _cas_analysis(
         exp = (arr[:, :-1] @ weights) % 10
         expected[formed] = exp
         ok[formed] = exp == arr[:, -1]
-    return s, missing, formed, expected, ok
+    return formed, expected, ok
+
+
+def _cas_analysis(
+    cas: pd.Series,
+) -> tuple[pd.Series, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Return (clean text, missing, well-formed, expected check digit (-1 if not formed), ok)."""
+    codes, unique = _clean_codes(cas, len(cas))
+    formed, expected, ok = _cas_rule(unique)
+    s = pd.Series(pd.array(_take(unique, codes), dtype="string"), index=cas.index)
+    missing = codes < 0
+    return (
+        s,
+        missing,
+        _take_flag(formed, codes),
+        np.append(expected, -1)[codes],
+        _take_flag(ok, codes),
+    )
 
 
 def cas_check_digit_ok(cas: pd.Series) -> np.ndarray:
@@ -270,6 +371,13 @@ def cache_version() -> str:
     )
 
 
+def _none_for_null(values: np.ndarray) -> np.ndarray:
+    """Object array of a DuckDB ``fetchnumpy`` column, ``None`` where the value was NULL."""
+    out = np.asarray(np.ma.getdata(values), dtype=object).copy()
+    out[np.ma.getmaskarray(values)] = None
+    return out
+
+
 def _check_kind(kind: str) -> tuple[str, ...]:
     try:
         return CACHE_KINDS[kind]
@@ -330,34 +438,61 @@ class IdentityCache:
             for kind, cols in CACHE_KINDS.items()
         }
         self._dirty = False
+        # per kind, the stored frame's columns as object arrays (built on first use)
+        self._values: dict[str, dict[str, np.ndarray]] = {}
         if self.path.exists():
             self._load()
 
     def _load(self) -> None:
+        path = str(self.path)
         with duckdb.connect() as con:
-            rows = con.execute("SELECT * FROM read_parquet(?)", [str(self.path)]).df()
-        current = rows["version"] == self.version
-        self.stale_rows = int((~current).sum())
-        rows = rows[current]
-        for kind, cols in CACHE_KINDS.items():
-            part = rows[rows["kind"] == kind]
-            frame = part.set_index("text")[list(cols)].astype("object")
-            frame = frame.where(frame.notna(), None)
-            frame.index.name = "text"
-            self._frames[kind] = frame[~frame.index.duplicated(keep="last")]
+            # only rows of this version, each kind with its own columns, in file order
+            self.stale_rows = con.execute(
+                "SELECT count(*) FROM read_parquet(?) WHERE version IS DISTINCT FROM ?",
+                [path, self.version],
+            ).fetchone()[0]
+            con.execute(
+                "CREATE TEMP TABLE current_rows AS SELECT * FROM read_parquet(?) WHERE version = ?",
+                [path, self.version],
+            )
+            for kind, cols in CACHE_KINDS.items():
+                select = ", ".join(f'"{c}"' for c in ("text", *cols))
+                got = con.execute(
+                    f"SELECT {select} FROM current_rows WHERE kind = ?", [kind]
+                ).fetchnumpy()
+                text = pd.Index(_none_for_null(got["text"]), name="text")
+                frame = pd.DataFrame(
+                    {c: _none_for_null(got[c]) for c in cols}, index=text, dtype=object
+                )
+                self._frames[kind] = frame[~frame.index.duplicated(keep="last")]
 
     def __len__(self) -> int:
         return sum(len(f) for f in self._frames.values())
 
+    def _positions(self, kind: str, texts: Sequence[str] | pd.Index) -> np.ndarray:
+        """Row position of each text in the kind's stored frame, -1 if absent (counts hits)."""
+        _check_kind(kind)
+        # the stored index is unique, and its hash table is kept between calls
+        positions = self._frames[kind].index.get_indexer(pd.Index(texts))
+        found = int((positions >= 0).sum())
+        self.hits += found
+        self.misses += len(positions) - found
+        return positions
+
     def lookup(self, kind: str, texts: Sequence[str] | pd.Index) -> pd.DataFrame:
         """Cached rows for ``texts`` (those present), indexed by text."""
-        _check_kind(kind)
-        frame = self._frames[kind]
-        keys = pd.Index(texts)
-        found = keys[keys.isin(frame.index)]
-        self.hits += len(found)
-        self.misses += len(keys) - len(found)
-        return frame.loc[found]
+        positions = self._positions(kind, texts)
+        return self._frames[kind].iloc[positions[positions >= 0]]
+
+    def _columns(self, kind: str) -> dict[str, np.ndarray]:
+        """The kind's stored columns as object arrays, each with one ``None`` appended (the
+        slot that absent texts point to)."""
+        stored = self._values.get(kind)
+        if stored is None:
+            frame = self._frames[kind]
+            stored = {c: np.append(frame[c].to_numpy(dtype=object), None) for c in frame}
+            self._values[kind] = stored
+        return stored
 
     def store(self, kind: str, results: pd.DataFrame) -> None:
         """Add results (indexed by text, with the kind's columns); later rows win."""
@@ -375,6 +510,7 @@ class IdentityCache:
         merged = pd.concat([old[~old.index.isin(new.index)], new]) if len(old) else new
         merged.index.name = "text"
         self._frames[kind] = merged
+        self._values.pop(kind, None)
         self._dirty = True
 
     def save(self, force: bool = False) -> None:
@@ -408,30 +544,59 @@ class IdentityCache:
         self._dirty = False
 
 
+class _Results:
+    """Results for unique texts: column ``c`` of text ``i`` is ``values[c][slot[i]]``.
+
+    The last element of every ``values`` array is ``None``; it stands for "no text". Rows
+    coded against the texts (see :func:`_clean_codes`) are served by one take through
+    :meth:`rows`, without first building a per-text array.
+    """
+
+    def __init__(self, values: dict[str, np.ndarray], slot: np.ndarray) -> None:
+        self.values = values
+        self.slot = slot
+        self.none_slot = len(next(iter(values.values()))) - 1
+
+    def __getitem__(self, col: str) -> np.ndarray:
+        """Column ``col`` per text."""
+        return self.values[col][self.slot]
+
+    def rows(self, col: str, codes: np.ndarray) -> np.ndarray:
+        """Column ``col`` per row, for row codes into the texts (``None`` where -1)."""
+        return self.values[col][np.append(self.slot, self.none_slot)[codes]]
+
+
 def _cached(
     kind: str,
     texts: pd.Index,
     compute: Callable[[list[str]], list[tuple[str | None, ...]]],
     cache: IdentityCache | None,
-) -> pd.DataFrame:
-    """Results for unique ``texts``: cache hits plus ``compute(list_of_texts)`` for the rest."""
+) -> _Results:
+    """Results for ``texts`` (unique, none missing): cache hits plus ``compute(list_of_texts)``
+    for the rest. A warm cache answers with one index lookup and no copy of its columns."""
     cols = list(CACHE_KINDS[kind])
-    texts = pd.Index(texts).dropna().unique()
     if cache is not None:
-        hit = cache.lookup(kind, texts)
-        todo = texts[~texts.isin(hit.index)]
+        values = cache._columns(kind)
+        slot = cache._positions(kind, texts)
     else:
-        hit = pd.DataFrame(columns=cols, dtype="object")
-        todo = texts
+        values = {c: np.array([None], dtype=object) for c in cols}
+        slot = np.full(len(texts), -1, dtype=np.intp)
+    found = slot >= 0
+    todo = texts[~found]
     if len(todo):
         rows = compute(list(todo))
         new = pd.DataFrame(rows, columns=cols, index=pd.Index(todo, name="text"), dtype="object")
+        new = new.where(new.notna(), None)
         if cache is not None:
             cache.store(kind, new)
-        out = pd.concat([hit, new]) if len(hit) else new
-    else:
-        out = hit
-    return out.reindex(texts)
+        # computed results go between the known values and the final None slot
+        first_new = len(values[cols[0]]) - 1
+        values = {
+            c: np.concatenate([values[c][:-1], new[c].to_numpy(dtype=object), [None]]) for c in cols
+        }
+        slot = slot.copy()
+        slot[~found] = first_new + np.arange(len(todo))
+    return _Results(values, slot)
 
 
 # --------------------------------------------------------------------------------------------
@@ -509,19 +674,61 @@ def _standardize_parallel(
 
 def _standardize_unique(
     kind: str, texts: pd.Index, cache: IdentityCache | None, n_jobs: int | None = None
-) -> pd.DataFrame:
+) -> _Results:
     return _cached(kind, texts, lambda todo: _standardize_parallel(kind, todo, n_jobs), cache)
 
 
-def _rows_from(results: pd.DataFrame, keys: pd.Series, cols: Sequence[str]) -> pd.DataFrame:
-    """Map unique-text results back onto rows (``keys`` holds each row's text or NA)."""
-    idx = pd.Index(keys.astype("object").where(keys.notna(), None))
-    if len(results):
-        out = results.reindex(idx)[list(cols)]
-    else:
-        out = pd.DataFrame(None, index=idx, columns=list(cols), dtype="object")
-    out.index = keys.index
-    return out.astype("object").where(out.notna(), None)
+def _structure_rows(
+    smiles_codes: np.ndarray,
+    smiles_texts: np.ndarray,
+    inchi_codes: np.ndarray,
+    inchi_texts: np.ndarray,
+    cache: IdentityCache | None,
+    n_jobs: int | None,
+) -> dict[str, np.ndarray]:
+    """Per-row structure results (the columns of :func:`standardize_structures`) from coded
+    SMILES and InChI texts (see :func:`_clean_codes`)."""
+    cols = ("parent_smiles", "inchikey", "formula", "input_smiles_canonical")
+    by_smiles = _standardize_unique("smiles", pd.Index(smiles_texts), cache, n_jobs)
+    by_inchi = _standardize_unique("inchi", pd.Index(inchi_texts), cache, n_jobs)
+    sm_ok = _take_flag(_present(by_smiles["inchikey"]), smiles_codes)
+    in_ok = _take_flag(_present(by_inchi["inchikey"]), inchi_codes)
+    use_inchi = ~sm_ok & in_ok
+    out = {c: by_smiles.rows(c, smiles_codes) for c in cols}
+    if use_inchi.any():
+        for c in cols:
+            out[c][use_inchi] = by_inchi.rows(c, inchi_codes[use_inchi])
+    out["structure_from"] = np.where(sm_ok, "smiles", np.where(use_inchi, "inchi", None))
+    out["has_structure"] = sm_ok | use_inchi
+
+    n_rows = len(smiles_codes)
+    rescued = np.full(n_rows, None, dtype=object)
+    rescued[(smiles_codes >= 0) & ~sm_ok & use_inchi] = "the structure was taken from the InChI"
+    both = sm_ok & in_ok
+    differ = np.zeros(n_rows, dtype=bool)
+    sm_key_both = by_smiles.rows("inchikey", smiles_codes[both])
+    in_key_both = by_inchi.rows("inchikey", inchi_codes[both])
+    differ[both] = sm_key_both != in_key_both
+    clash = np.full(n_rows, None, dtype=object)
+    if differ.any():
+        clash[differ] = (
+            "SMILES '"
+            + _take(smiles_texts, smiles_codes[differ])
+            + "' and InChI '"
+            + _take(inchi_texts, inchi_codes[differ])
+            + "' give different parents ("
+            + by_smiles.rows("inchikey", smiles_codes[differ])
+            + " vs "
+            + by_inchi.rows("inchikey", inchi_codes[differ])
+            + "); the SMILES was used"
+        )
+    sm_err = by_smiles.rows("error", smiles_codes)
+    in_err = np.full(n_rows, None, dtype=object)
+    has_inchi = inchi_codes >= 0
+    if has_inchi.any():
+        in_err[has_inchi] = by_inchi.rows("error", inchi_codes[has_inchi])
+    out["error"] = _join_parts(sm_err, in_err, rescued, clash)
+    return out
 
 
 def standardize_structures(
@@ -587,50 +794,12 @@ def standardize_structures(
         raise ValueError("smiles and inchi must share one index; got different indexes")
     index = smiles.index if smiles is not None else inchi.index if inchi is not None else None
     assert index is not None
-    s = _clean_text(smiles, index)
-    i = _clean_text(inchi, index)
-    cols = [*STRUCTURE_COLUMNS]
-    sm = _rows_from(_standardize_unique("smiles", pd.Index(s.dropna()), cache, n_jobs), s, cols)
-    inn = _rows_from(_standardize_unique("inchi", pd.Index(i.dropna()), cache, n_jobs), i, cols)
-    sm_ok = sm["inchikey"].notna()
-    in_ok = inn["inchikey"].notna()
-    use_inchi = ~sm_ok & in_ok
-    out = sm[cols].copy()
-    out.loc[use_inchi, cols] = inn.loc[use_inchi, cols]
-    out["structure_from"] = np.where(sm_ok, "smiles", np.where(use_inchi, "inchi", None))
-    out["structure_from"] = _none_object(out["structure_from"])
-
-    sm_err = sm["error"].where(s.notna())
-    in_err = inn["error"].where(i.notna())
-    rescued = pd.Series(
-        np.where(s.notna() & ~sm_ok & use_inchi, "the structure was taken from the InChI", None),
-        index=index,
-    )
-    differ = sm_ok & in_ok & (sm["inchikey"] != inn["inchikey"])
-    clash = (
-        "SMILES "
-        + _quote(s)
-        + " and InChI "
-        + _quote(i)
-        + " give different parents ("
-        + sm["inchikey"].astype("string")
-        + " vs "
-        + inn["inchikey"].astype("string")
-        + "); the SMILES was used"
-    ).where(differ)
-    out["error"] = _join_messages(sm_err, in_err, rescued, clash)
+    smiles_codes, smiles_texts = _clean_codes(smiles, len(index))
+    inchi_codes, inchi_texts = _clean_codes(inchi, len(index))
+    rows = _structure_rows(smiles_codes, smiles_texts, inchi_codes, inchi_texts, cache, n_jobs)
     if cache is not None and save:
         cache.save()
-    return out[
-        [
-            "parent_smiles",
-            "inchikey",
-            "formula",
-            "input_smiles_canonical",
-            "structure_from",
-            "error",
-        ]
-    ]
+    return pd.DataFrame({c: _object_series(rows[c], index) for c in STRUCTURE_RESULT_COLUMNS})
 
 
 # --------------------------------------------------------------------------------------------
@@ -655,15 +824,40 @@ def _lookup_texts(kind: str, texts: Sequence[str]) -> list[tuple[str | None, ...
     return out
 
 
-def _lookup_unique(kind: str, texts: pd.Index, cache: IdentityCache | None) -> pd.DataFrame:
+def _lookup_unique(kind: str, texts: pd.Index, cache: IdentityCache | None) -> _Results:
     return _cached(kind, texts, lambda todo: _lookup_texts(kind, todo), cache)
 
 
-def _parent_keys(db_smiles: pd.Series, cache: IdentityCache | None) -> pd.DataFrame:
-    """Parent InChIKey / SMILES for database SMILES (index kept)."""
-    keys = _clean_text(db_smiles)
-    res = _standardize_unique("smiles", pd.Index(keys.dropna()), cache)
-    return _rows_from(res, keys, ["parent_smiles", "inchikey"])
+def _parent_keys(
+    db_smiles: np.ndarray, cache: IdentityCache | None
+) -> tuple[np.ndarray, np.ndarray]:
+    """(parent SMILES, parent InChIKey) for database SMILES (object array, ``None`` allowed)."""
+    codes, texts = _clean_codes(pd.Series(db_smiles, dtype=object), len(db_smiles))
+    res = _standardize_unique("smiles", pd.Index(texts), cache)
+    return res.rows("parent_smiles", codes), res.rows("inchikey", codes)
+
+
+def _lookup_on(
+    kind: str, texts: np.ndarray, need: np.ndarray, cache: IdentityCache | None
+) -> dict[str, np.ndarray]:
+    """Database columns for the unique ``texts`` where ``need`` holds (``None`` elsewhere)."""
+    res = _lookup_unique(kind, pd.Index(texts[need]), cache)
+    out: dict[str, np.ndarray] = {}
+    for col in LOOKUP_COLUMNS:
+        values = np.full(len(texts), None, dtype=object)
+        values[need] = res[col]
+        out[col] = values
+    return out
+
+
+def _lookup_rows(
+    kind: str, keys: np.ndarray, rows: np.ndarray, cache: IdentityCache | None
+) -> dict[str, np.ndarray]:
+    """Database columns per row for ``keys[rows]`` (``None`` on other rows), over unique keys."""
+    codes = np.full(len(keys), -1, dtype=np.intp)
+    codes[rows], unique = pd.factorize(keys[rows])
+    res = _lookup_unique(kind, pd.Index(unique), cache)
+    return {c: res.rows(c, codes) for c in LOOKUP_COLUMNS}
 
 
 def _prepare_synonyms(synonyms: pd.DataFrame | None, cache: IdentityCache | None) -> pd.DataFrame:
@@ -776,127 +970,168 @@ def resolve_identities(
     (['QTBSBXVTEAMEQO-UHFFFAOYSA-N', 'QTBSBXVTEAMEQO-UHFFFAOYSA-N'], ['name', 'cas'])
     """
     index = frame.index
-    name = _clean_text(frame["name"] if "name" in frame else None, index)
-    name_key = name.str.casefold()
-    smiles_in = _clean_text(frame["smiles"] if "smiles" in frame else None, index)
-    inchi_in = _clean_text(frame["inchi"] if "inchi" in frame else None, index)
-    cas_s, cas_missing, _, _, cas_ok = _cas_analysis(
-        frame["cas"] if "cas" in frame else pd.Series(None, index=index, dtype="object")
-    )
-    cas_s.index = index
+    n_rows = len(index)
 
-    st = standardize_structures(smiles_in, inchi_in, cache=cache, n_jobs=n_jobs, save=False)
+    def column(field: str) -> pd.Series | None:
+        return frame[field] if field in frame else None
+
+    # Each identifier column as per-row codes into its unique cleaned texts; everything that
+    # depends on one column (lookups, messages) is worked out once per unique text.
+    name_codes, names = _clean_codes(column("name"), n_rows)
+    smiles_codes, smiles_texts = _clean_codes(column("smiles"), n_rows)
+    inchi_codes, inchi_texts = _clean_codes(column("inchi"), n_rows)
+    cas_codes, cas_texts = _clean_codes(column("cas"), n_rows)
+    name_keys = np.array([t.casefold() for t in names], dtype=object)
+    _, _, cas_ok_u = _cas_rule(cas_texts)
+    cas_missing = cas_codes < 0
+    cas_ok = _take_flag(cas_ok_u, cas_codes)
+
+    st = _structure_rows(smiles_codes, smiles_texts, inchi_codes, inchi_texts, cache, n_jobs)
     syn = _prepare_synonyms(synonyms, cache)
 
-    # --- synonym hits by name
-    syn_rows = _rows_from(syn, name_key, ["inchikey", "parent_smiles", "cas"])
-    syn_hit = syn_rows["inchikey"].notna()
+    # --- synonym hits by name (per unique name)
+    syn_pos = syn.index.get_indexer(pd.Index(name_keys)) if len(syn) else np.full(len(names), -1)
+    syn_key_u = _take(syn["inchikey"].to_numpy(dtype=object), syn_pos)
+    syn_smiles_u = _take(syn["parent_smiles"].to_numpy(dtype=object), syn_pos)
+    syn_cas_u = _take(syn["cas"].to_numpy(dtype=object), syn_pos)
+    syn_hit_u = _present(syn_key_u)
 
-    # --- CAS: steward table first, then the database
-    valid_cas = cas_s.where(cas_ok)
+    # --- CAS (per unique CAS): steward table first, then the database
     syn_by_cas = syn[syn["cas"].notna()].drop_duplicates("cas").set_index("cas")
-    cas_syn = _rows_from(syn_by_cas, valid_cas, ["inchikey", "parent_smiles"])
-    need_db_cas = valid_cas.where(cas_syn["inchikey"].isna())
-    cas_db = _rows_from(
-        _lookup_unique("cas", pd.Index(need_db_cas.dropna()), cache), need_db_cas, LOOKUP_COLUMNS
+    cas_pos = (
+        syn_by_cas.index.get_indexer(pd.Index(cas_texts))
+        if len(syn_by_cas)
+        else np.full(len(cas_texts), -1)
     )
-    cas_par = _parent_keys(cas_db["db_smiles"], cache)
-    cas_key = cas_syn["inchikey"].fillna(cas_par["inchikey"])
-    cas_smiles = cas_syn["parent_smiles"].fillna(cas_par["parent_smiles"])
+    cas_pos[~cas_ok_u] = -1
+    cas_syn_key_u = _take(syn_by_cas["inchikey"].to_numpy(dtype=object), cas_pos)
+    cas_syn_smiles_u = _take(syn_by_cas["parent_smiles"].to_numpy(dtype=object), cas_pos)
+    cas_db_u = _lookup_on("cas", cas_texts, cas_ok_u & ~_present(cas_syn_key_u), cache)
+    cas_par_smiles_u, cas_par_key_u = _parent_keys(cas_db_u["db_smiles"], cache)
+    cas_key_u = _fill(cas_syn_key_u, cas_par_key_u)
+    cas_smiles_u = _fill(cas_syn_smiles_u, cas_par_smiles_u)
 
-    # --- name via the database (rows whose name is not a steward synonym)
-    need_db_name = name.where(~syn_hit)
-    name_db = _rows_from(
-        _lookup_unique("name", pd.Index(need_db_name.dropna()), cache), need_db_name, LOOKUP_COLUMNS
-    )
-    name_par = _parent_keys(name_db["db_smiles"], cache)
-    name_inchikey = syn_rows["inchikey"].fillna(name_par["inchikey"])
+    # --- name via the database (per unique name that is not a steward synonym)
+    name_db_u = _lookup_on("name", names, ~syn_hit_u, cache)
+    name_par_smiles_u, name_par_key_u = _parent_keys(name_db_u["db_smiles"], cache)
+    name_inchikey_u = _fill(syn_key_u, name_par_key_u)
 
-    # --- precedence: structure > synonym > CAS > name
-    has_struct = st["inchikey"].notna()
-    by_syn = ~has_struct & syn_hit
-    by_cas = ~has_struct & ~by_syn & cas_key.notna()
-    by_name = ~has_struct & ~by_syn & ~by_cas & name_par["inchikey"].notna()
-    resolved_by = st["structure_from"].where(has_struct)
-    resolved_by = resolved_by.mask(by_syn, "synonym").mask(by_cas, "cas").mask(by_name, "name")
+    # --- precedence per row: structure > synonym > CAS > name
+    has_struct = st["has_structure"]
+    by_syn = ~has_struct & _take_flag(syn_hit_u, name_codes)
+    by_cas = ~has_struct & ~by_syn & _take_flag(_present(cas_key_u), cas_codes)
+    by_name = ~has_struct & ~by_syn & ~by_cas & _take_flag(_present(name_par_key_u), name_codes)
+    resolved_by = np.where(has_struct, st["structure_from"], None)
+    resolved_by[by_syn] = "synonym"
+    resolved_by[by_cas] = "cas"
+    resolved_by[by_name] = "name"
 
-    inchikey = st["inchikey"].where(has_struct)
-    inchikey = inchikey.mask(by_syn, syn_rows["inchikey"]).mask(by_cas, cas_key)
-    inchikey = inchikey.mask(by_name, name_par["inchikey"])
-    parent = st["parent_smiles"].where(has_struct)
-    parent = parent.mask(by_syn, syn_rows["parent_smiles"]).mask(by_cas, cas_smiles)
-    parent = parent.mask(by_name, name_par["parent_smiles"])
-    inchikey, parent = _none_object(inchikey), _none_object(parent)
+    inchikey = np.where(has_struct, st["inchikey"], None)
+    parent = np.where(has_struct, st["parent_smiles"], None)
+    for chosen, key_u, smiles_u, codes in (
+        (by_syn, syn_key_u, syn_smiles_u, name_codes),
+        (by_cas, cas_key_u, cas_smiles_u, cas_codes),
+        (by_name, name_par_key_u, name_par_smiles_u, name_codes),
+    ):
+        if chosen.any():
+            inchikey[chosen] = _take(key_u, codes[chosen])
+            parent[chosen] = _take(smiles_u, codes[chosen])
+    has_key = has_struct | by_syn | by_cas | by_name
 
     # formula of the parent: from the structure result or a standardization of the parent SMILES
-    formula = st["formula"].where(has_struct)
-    need_formula = parent.where(~has_struct & pd.Series(inchikey, index=index).notna())
-    if need_formula.notna().any():
-        f_res = _standardize_unique("smiles", pd.Index(need_formula.dropna()), cache)
-        formula = formula.fillna(_rows_from(f_res, need_formula, ["formula"])["formula"])
+    formula = np.where(has_struct, st["formula"], None)
+    need_formula = ~has_struct & has_key & _present(parent)
+    if need_formula.any():
+        f_codes, f_texts = pd.factorize(parent[need_formula])
+        f_res = _standardize_unique("smiles", pd.Index(f_texts), cache)
+        formula[need_formula] = f_res.rows("formula", f_codes)
 
     # --- database entry of the parent, for a missing CAS or name
-    need_entry = inchikey.where(~(pd.Series(cas_ok, index=index)) | name.isna())
-    entry = _rows_from(
-        _lookup_unique("inchikey", pd.Index(need_entry.dropna()), cache), need_entry, LOOKUP_COLUMNS
-    )
-    cas_out = valid_cas.astype("object")
-    cas_out = cas_out.where(cas_out.notna(), syn_rows["cas"].where(by_syn))
-    cas_out = cas_out.where(pd.notna(cas_out), entry["db_cas"])
-    name_out = name.astype("object")
-    name_out = name_out.where(name_out.notna(), entry["db_name"])
-    name_out = name_out.where(pd.notna(name_out), cas_db["db_name"])
+    entry = _lookup_rows("inchikey", inchikey, (~cas_ok | (name_codes < 0)) & has_key, cache)
+    valid_cas_u = np.where(cas_ok_u, cas_texts, None)
+    cas_out = _take(valid_cas_u, cas_codes)
+    from_syn = ~cas_ok & by_syn
+    cas_out[from_syn] = _take(syn_cas_u, name_codes[from_syn])
+    cas_out = _fill(cas_out, entry["db_cas"])
+    name_out = _take(names, name_codes)
+    name_out[name_codes < 0] = entry["db_name"][name_codes < 0]
+    name_out = _fill(name_out, _take(cas_db_u["db_name"], cas_codes))
 
-    # --- stable id for rows without a structure
-    unresolved = (
-        ("unresolved:name:" + name_key)
-        .fillna("unresolved:cas:" + cas_s)
-        .fillna("unresolved:smiles:" + smiles_in)
-        .fillna("unresolved:inchi:" + inchi_in)
-    )
-    compound_id = _none_object(pd.Series(inchikey, index=index).astype("object").fillna(unresolved))
+    # --- stable id and reasons for rows without a structure
+    compound_id = inchikey.copy()
+    nothing = ~has_key
+    error = st["error"]
+    if nothing.any():
+        unresolved = np.full(int(nothing.sum()), None, dtype=object)
+        for prefix, texts, codes in (
+            ("unresolved:name:", name_keys, name_codes),
+            ("unresolved:cas:", cas_texts, cas_codes),
+            ("unresolved:smiles:", smiles_texts, smiles_codes),
+            ("unresolved:inchi:", inchi_texts, inchi_codes),
+        ):
+            todo = ~_present(unresolved) & (codes[nothing] >= 0)
+            unresolved[todo] = prefix + _take(texts, codes[nothing][todo])
+        compound_id[nothing] = unresolved
 
-    cas_valid = pd.array(np.where(cas_missing, None, cas_ok), dtype="boolean")
+        def why(
+            head: str, texts: np.ndarray, tail: str, codes: np.ndarray, where: np.ndarray
+        ) -> np.ndarray:
+            """``head + text + tail`` on the rows ``where`` (which all have a text)."""
+            out = np.full(n_rows, None, dtype=object)
+            out[where] = head + _take(texts, codes[where]) + tail
+            return out
 
-    # --- reasons when nothing resolved
-    nothing = pd.Series(inchikey, index=index).isna()
-    given_any = (
-        name.notna() | ~pd.Series(cas_missing, index=index) | smiles_in.notna() | inchi_in.notna()
-    )
-    why_name = (
-        "name " + _quote(name) + " is neither a steward synonym nor in the chemicals database"
-    ).where(nothing & name.notna())
-    why_cas_bad = ("CAS " + _quote(cas_s) + " fails the CAS check-digit rule").where(
-        nothing & pd.Series(~cas_missing & ~cas_ok, index=index)
-    )
-    why_cas_db = ("CAS " + _quote(cas_s) + " is not in the chemicals database").where(
-        nothing & pd.Series(cas_ok, index=index)
-    )
-    why_none = pd.Series(
-        np.where(nothing & ~given_any, "no name, CAS, SMILES or InChI given", None), index=index
-    )
-    reasons = _join_messages(why_name, why_cas_bad, why_cas_db)
-    unfound = ("no structure found: " + reasons.astype("string")).where(reasons.notna())
-    error = _join_messages(st["error"], unfound, why_none)
+        why_name = why(
+            "name '",
+            names,
+            "' is neither a steward synonym nor in the chemicals database",
+            name_codes,
+            nothing & (name_codes >= 0),
+        )
+        why_cas_bad = why(
+            "CAS '",
+            cas_texts,
+            "' fails the CAS check-digit rule",
+            cas_codes,
+            nothing & ~cas_missing & ~cas_ok,
+        )
+        why_cas_db = why(
+            "CAS '", cas_texts, "' is not in the chemicals database", cas_codes, nothing & cas_ok
+        )
+        given_any = (name_codes >= 0) | ~cas_missing | (smiles_codes >= 0) | (inchi_codes >= 0)
+        why_none = np.where(nothing & ~given_any, "no name, CAS, SMILES or InChI given", None)
+        reasons = _join_parts(why_name, why_cas_bad, why_cas_db)
+        unfound = np.full(n_rows, None, dtype=object)
+        has_reason = _present(reasons)
+        unfound[has_reason] = "no structure found: " + reasons[has_reason]
+        error = _join_parts(error, unfound, why_none)
 
-    out = pd.DataFrame(
-        {
-            "compound_id": compound_id,
-            "inchikey": inchikey,
-            "smiles": parent,
-            "formula": _none_object(formula),
-            "cas": _none_object(pd.Series(cas_out, index=index)),
-            "name": _none_object(pd.Series(name_out, index=index)),
-            "resolved_by": _none_object(resolved_by),
-            "cas_valid": cas_valid,
-            "cas_given": _none_object(cas_s),
-            "name_inchikey": _none_object(name_inchikey),
-            "cas_inchikey": _none_object(cas_key),
-            # the species as the row gave it (salt or charged form kept), for CAS comparisons
-            "species_smiles": _none_object(st["input_smiles_canonical"].where(has_struct)),
-            "error": _none_object(error),
-        },
-        index=index,
+    columns = {
+        "compound_id": compound_id,
+        "inchikey": inchikey,
+        "smiles": parent,
+        "formula": formula,
+        "cas": cas_out,
+        "name": name_out,
+        "resolved_by": resolved_by,
+        "cas_valid": None,
+        "cas_given": _take(cas_texts, cas_codes),
+        "name_inchikey": _take(name_inchikey_u, name_codes),
+        "cas_inchikey": _take(cas_key_u, cas_codes),
+        # the species as the row gave it (salt or charged form kept), for CAS comparisons
+        "species_smiles": np.where(has_struct, st["input_smiles_canonical"], None),
+        "error": error,
+    }
+    # one object block for the text columns (column-major, so pandas takes it without a copy)
+    text_columns = [c for c in columns if c != "cas_valid"]
+    block = np.empty((n_rows, len(text_columns)), dtype=object, order="F")
+    for j, c in enumerate(text_columns):
+        block[:, j] = columns[c]
+    out = pd.DataFrame(block, index=index, columns=text_columns, dtype=object, copy=False)
+    out.insert(
+        list(columns).index("cas_valid"),
+        "cas_valid",
+        pd.array(np.where(cas_missing, None, cas_ok), dtype="boolean"),
     )
     if cache is not None:
         cache.save()
@@ -983,130 +1218,163 @@ def identity_findings(
     >>> f["rule"].tolist()
     ['cas_check_digit']
     """
+    # Masks run over all rows as arrays; messages are composed only on the rows a rule reports
+    # (a few hundred in a million), with the same pandas expressions row by row.
     index = resolved.index
+    n_rows = len(index)
     src = _aligned(source_id, index, "source_id")
-    vid = _aligned(value_id, index, "value_id")
-    key = resolved["inchikey"]
-    cas_given = _clean_text(resolved["cas_given"])
+    vid = _aligned(value_id, index, "value_id").to_numpy(dtype=object)
+    key_present = resolved["inchikey"].notna().to_numpy(dtype=bool)
+    cas_codes, cas_texts = _clean_codes(resolved["cas_given"], n_rows)
     valid = resolved["cas_valid"].astype("boolean")
     is_valid = valid.fillna(False).to_numpy(dtype=bool)
     frames: list[pd.DataFrame] = []
 
-    def add(rule: str, mask: pd.Series | np.ndarray, message: pd.Series) -> None:
-        m = np.asarray(mask, dtype=bool)
-        if m.any():
-            frames.append(
-                pd.DataFrame(
-                    {
-                        "rule": rule,
-                        "severity": FINDING_RULES[rule],
-                        "value_id": vid[m].to_numpy(),
-                        "message": message[m].astype(str).to_numpy(),
-                    }
-                )
+    def rows(mask: np.ndarray) -> pd.DataFrame:
+        return resolved[mask]
+
+    def cas_given(mask: np.ndarray) -> pd.Series:
+        """Clean given CAS text of the rows ``mask`` (string dtype, like ``_clean_text``)."""
+        return pd.Series(
+            pd.array(_take(cas_texts, cas_codes[mask]), dtype="string"), index=index[mask]
+        )
+
+    def add(rule: str, mask: np.ndarray, message: pd.Series) -> None:
+        """Report the rows ``mask``; ``message`` holds one text per reported row."""
+        frames.append(
+            pd.DataFrame(
+                {
+                    "rule": rule,
+                    "severity": FINDING_RULES[rule],
+                    "value_id": vid[mask],
+                    "message": message.astype(str).to_numpy(),
+                }
             )
+        )
 
     # cas_check_digit
     bad = valid.fillna(True).eq(False).to_numpy(dtype=bool)
     if bad.any():
-        _, _, formed, expected, _ = _cas_analysis(cas_given)
-        last = cas_given.str[-1]
+        given = cas_given(bad)
+        _, _, formed, expected, _ = _cas_analysis(given)
+        last = given.str[-1]
         msg = pd.Series(
             np.where(
                 formed,
                 "CAS "
-                + _quote(cas_given)
+                + _quote(given)
                 + " fails the check-digit rule (check digit "
                 + last.astype("string")
                 + ", expected "
-                + pd.Series(expected, index=index).astype(str)
+                + pd.Series(expected, index=given.index).astype(str)
                 + ")",
-                "CAS " + _quote(cas_given) + " is not a CAS Registry Number (form: 2-7 digits, "
+                "CAS " + _quote(given) + " is not a CAS Registry Number (form: 2-7 digits, "
                 "2 digits, 1 check digit, hyphen separated, e.g. 64-19-7)",
             ),
-            index=index,
+            index=given.index,
         )
         add("cas_check_digit", bad, msg)
 
-    # cas_structure_conflict
-    use = is_valid & key.notna().to_numpy()
+    # cas_structure_conflict: the row keys of a valid CAS plus the database's key for it
+    use = is_valid & key_present
     if use.any():
-        rows_long = pd.DataFrame({"cas": cas_given[use], "key": key[use], "source": src[use]})
-        db = resolved.loc[use, ["cas_inchikey"]].assign(cas=cas_given[use])
-        db = db[db["cas_inchikey"].notna()].drop_duplicates("cas")
-        db_long = pd.DataFrame({"cas": db["cas"], "key": db["cas_inchikey"], "source": "database"})
-        long = pd.concat([rows_long, db_long], ignore_index=True)
-        n_keys = long.groupby("cas")["key"].nunique()
-        conflicted = n_keys[n_keys > 1]
-        if len(conflicted):
-            listing = _list_by_key(long[long["cas"].isin(conflicted.index)], "cas", "key")
-            mask = use & cas_given.isin(conflicted.index).fillna(False).to_numpy(dtype=bool)
+        db_key = resolved["cas_inchikey"].to_numpy(dtype=object)[use]
+        in_db = pd.notna(db_key)
+        cas_of_row = cas_codes[use]
+        # the first database key seen per CAS, as drop_duplicates("cas") keeps it
+        db_cas, first = np.unique(cas_of_row[in_db], return_index=True)
+        key_codes, _ = pd.factorize(
+            np.concatenate([resolved["inchikey"].to_numpy(dtype=object)[use], db_key[in_db][first]])
+        )
+        pair_cas = np.concatenate([cas_of_row, db_cas])
+        conflicted = _codes_with_several(pair_cas, key_codes, len(cas_texts))
+        mask = use & _take_flag(conflicted, cas_codes)
+        if mask.any():
+            sub = rows(mask)
+            sub_cas = cas_given(mask)
+            rows_long = pd.DataFrame({"cas": sub_cas, "key": sub["inchikey"], "source": src[mask]})
+            db_keep = _take_flag(conflicted, db_cas)
+            db_long = pd.DataFrame(
+                {
+                    "cas": _take(cas_texts, db_cas[db_keep]),
+                    "key": db_key[in_db][first][db_keep],
+                    "source": "database",
+                }
+            )
+            long = pd.concat([rows_long, db_long], ignore_index=True)
+            n_keys = long.groupby("cas")["key"].nunique()
+            listing = _list_by_key(long, "cas", "key")
             msg = (
                 "CAS "
-                + cas_given
+                + sub_cas
                 + " stands for "
-                + cas_given.map(conflicted).astype("Int64").astype(str)
+                + sub_cas.map(n_keys).astype("Int64").astype(str)
                 + " different structures: "
-                + cas_given.map(listing)
+                + sub_cas.map(listing)
                 + "; this row has "
-                + key.astype(str)
+                + sub["inchikey"].astype(str)
             )
             add("cas_structure_conflict", mask, msg)
 
     # name_structure_mismatch
-    structural = resolved["resolved_by"].isin(["smiles", "inchi"])
+    structural = resolved["resolved_by"].isin(["smiles", "inchi"]).to_numpy(dtype=bool)
     nk = resolved["name_inchikey"]
-    mism = structural & nk.notna() & key.notna() & (nk != key)
+    mism = structural & nk.notna().to_numpy(dtype=bool) & key_present
     if mism.any():
+        mism[mism] = (nk[mism] != resolved["inchikey"][mism]).to_numpy(dtype=bool)
+    if mism.any():
+        sub = rows(mism)
         msg = (
             "name "
-            + _quote(_clean_text(resolved["name"]))
+            + _quote(_clean_text(sub["name"]))
             + " resolves to "
-            + nk.astype(str)
+            + sub["name_inchikey"].astype(str)
             + " but the given structure is "
-            + key.astype(str)
+            + sub["inchikey"].astype(str)
             + " ("
-            + resolved["smiles"].astype(str)
+            + sub["smiles"].astype(str)
             + ")"
         )
         add("name_structure_mismatch", mism, msg)
 
     # structure_multiple_cas: compared on the species as given, so that a salt's own CAS
     # (sodium acetate 127-09-3) is not taken for a second CAS of the parent acid
-    species = (
-        resolved["species_smiles"]
-        if "species_smiles" in resolved
-        else pd.Series(None, index=resolved.index, dtype=object)
-    )
-    use_species = use & species.notna().to_numpy(dtype=bool)
+    if "species_smiles" in resolved:
+        use_species = use & resolved["species_smiles"].notna().to_numpy(dtype=bool)
+    else:
+        use_species = np.zeros(n_rows, dtype=bool)
     if use_species.any():
-        rows_long = pd.DataFrame(
-            {"key": species[use_species], "cas": cas_given[use_species], "source": src[use_species]}
+        species_codes = np.full(n_rows, -1, dtype=np.intp)
+        species_codes[use_species], species_u = pd.factorize(
+            resolved["species_smiles"].to_numpy(dtype=object)[use_species]
         )
-        n_cas = rows_long.groupby("key")["cas"].nunique()
-        multi = n_cas[n_cas > 1]
-        if len(multi):
-            listing = _list_by_key(rows_long[rows_long["key"].isin(multi.index)], "key", "cas")
-            mask = use_species & species.isin(multi.index).to_numpy(dtype=bool)
+        multi = _codes_with_several(
+            species_codes[use_species], cas_codes[use_species], len(species_u)
+        )
+        mask = use_species & _take_flag(multi, species_codes)
+        if mask.any():
+            species = resolved["species_smiles"][mask]
+            rows_long = pd.DataFrame({"key": species, "cas": cas_given(mask), "source": src[mask]})
+            n_cas = rows_long.groupby("key")["cas"].nunique()
+            listing = _list_by_key(rows_long, "key", "cas")
             msg = (
                 "structure "
                 + species.astype(str)
                 + " is given under "
-                + species.map(multi).astype("Int64").astype(str)
+                + species.map(n_cas).astype("Int64").astype(str)
                 + " CAS numbers: "
                 + species.map(listing)
             )
             add("structure_multiple_cas", mask, msg)
 
     # unresolved_identity
-    unres = key.isna()
+    unres = ~key_present
     if unres.any():
+        sub = rows(unres)
         what = (
-            resolved["compound_id"]
-            .astype(object)
-            .where(resolved["compound_id"].notna(), "(nothing given)")
+            sub["compound_id"].astype(object).where(sub["compound_id"].notna(), "(nothing given)")
         )
-        why = _clean_text(resolved["error"]).str.replace("no structure found: ", "", regex=False)
+        why = _clean_text(sub["error"]).str.replace("no structure found: ", "", regex=False)
         msg = ("no structure for " + what.astype(str) + ": " + why).fillna(
             "no structure for " + what.astype(str)
         )
@@ -1117,6 +1385,17 @@ def identity_findings(
             {c: pd.Series(dtype="object") for c in ("rule", "severity", "value_id", "message")}
         )
     return pd.concat(frames, ignore_index=True)
+
+
+def _codes_with_several(
+    group_codes: np.ndarray, item_codes: np.ndarray, n_groups: int
+) -> np.ndarray:
+    """Per group code, whether its rows hold more than one distinct item code (-1 = no item)."""
+    has_item = item_codes >= 0
+    pairs = np.unique(
+        np.stack([group_codes[has_item], item_codes[has_item]]).astype(np.int64), axis=1
+    )
+    return np.bincount(pairs[0], minlength=n_groups) > 1
 
 
 # --------------------------------------------------------------------------------------------
@@ -1179,67 +1458,109 @@ def infer_steps(frame: pd.DataFrame) -> pd.DataFrame:
     if missing_cols:
         raise ValueError(f"infer_steps: missing column(s) {missing_cols}; required: {need}")
     index = frame.index
+    n_rows = len(index)
     step = pd.array(frame["step"], dtype="Int64")
     pka = pd.to_numeric(frame["pka"], errors="coerce").to_numpy(dtype=float)
-    work = pd.DataFrame(
-        {
-            "compound_id": frame["compound_id"].astype(object).to_numpy(),
-            "source_id": frame["source_id"].astype(object).to_numpy(),
-            "t": pd.to_numeric(frame["temperature_k"], errors="coerce").round(2).to_numpy(),
-            "i": pd.to_numeric(frame["ionic_strength_molal"], errors="coerce").round(4).to_numpy(),
-            "step": step,
-            "pka": pka,
-        }
-    )
-    work["pos"] = np.arange(len(work))
-    keys = ["source_id", "compound_id", "t", "i"]
-    work["g"] = work.groupby(keys, dropna=False, sort=False).ngroup()
-    gb = work.groupby("g")
-    known = work["step"].notna()
-    n_rows = gb["pos"].transform("size")
-    n_known = known.groupby(work["g"]).transform("sum")
-    n_pka = work["pka"].notna().groupby(work["g"]).transform("sum")
-    dup = work.duplicated(["g", "pka"], keep=False) & work["pka"].notna()
-    any_dup = dup.groupby(work["g"]).transform("any")
-    rank = gb["pka"].rank(method="first")
 
-    steps_known = work.loc[known, ["compound_id", "step"]]
-    per_compound = steps_known.groupby("compound_id", dropna=False)["step"].agg(
-        ["nunique", "max", "min"]
+    # group codes: one integer per (source, compound, T rounded, I rounded), missing values
+    # forming their own group (like groupby dropna=False), all by factorizing each key once
+    compound = _group_codes(frame["compound_id"].to_numpy(dtype=object))
+    group = np.zeros(n_rows, dtype=np.int64)
+    span = 1  # number of distinct values ``group`` can take so far
+    for codes in (
+        _group_codes(frame["source_id"].to_numpy(dtype=object)),
+        compound,
+        _group_codes(pd.to_numeric(frame["temperature_k"], errors="coerce").round(2).to_numpy()),
+        _group_codes(
+            pd.to_numeric(frame["ionic_strength_molal"], errors="coerce").round(4).to_numpy()
+        ),
+    ):
+        n_values = int(codes.max(initial=0)) + 1
+        if span * n_values >= 2**62:  # keep the combined code inside int64
+            group = _group_codes(group)
+            span = int(group.max(initial=0)) + 1
+        group = group * n_values + codes
+        span *= n_values
+    group = _group_codes(group)
+    n_groups = int(group.max(initial=-1)) + 1
+
+    known = ~step.isna()
+    has_pka = ~np.isnan(pka)
+    n_rows_g = np.bincount(group, minlength=n_groups)
+    n_rows_of = n_rows_g[group]
+    n_known = np.bincount(group, weights=known, minlength=n_groups)[group]
+    n_pka = np.bincount(group, weights=has_pka, minlength=n_groups)[group]
+    # a pKa value met twice in its group
+    pair = _group_codes(group * (n_rows + 1) + _group_codes(pka))
+    dup = (np.bincount(pair)[pair] > 1) & has_pka
+    any_dup = np.bincount(group, weights=dup, minlength=n_groups)[group] > 0
+
+    # known steps per compound: number of distinct steps, highest and lowest
+    n_compounds = int(compound.max(initial=-1)) + 1
+    k_comp = compound[known]
+    k_step = step[known].to_numpy(dtype=np.int64)
+    k_order = np.lexsort((k_step, k_comp))
+    k_comp, k_step = k_comp[k_order], k_step[k_order]
+    new_compound = np.r_[True, k_comp[1:] != k_comp[:-1]] if len(k_comp) else np.zeros(0, bool)
+    new_step = (
+        new_compound | np.r_[True, k_step[1:] != k_step[:-1]] if len(k_comp) else new_compound
     )
-    c_id = work["compound_id"]
-    k_n = c_id.map(per_compound["nunique"]).fillna(0).astype(int)
-    k_max = c_id.map(per_compound["max"]).astype("Float64")
-    k_only = c_id.map(per_compound["min"]).astype("Float64")
+    k_n_c = np.bincount(k_comp, weights=new_step, minlength=n_compounds).astype(int)
+    k_max_c = np.full(n_compounds, np.nan)
+    k_min_c = np.full(n_compounds, np.nan)
+    last_of_compound = np.r_[new_compound[1:], True] if len(k_comp) else new_compound
+    k_min_c[k_comp[new_compound]] = k_step[new_compound]
+    k_max_c[k_comp[last_of_compound]] = k_step[last_of_compound]
+    k_n = k_n_c[compound]
+    k_max = k_max_c[compound]
+    k_only = k_min_c[compound]
 
     # largest group of the same compound anywhere: a bigger group elsewhere means this one
     # may be a subset of the steps
-    widest = n_rows.groupby(c_id, dropna=False).transform("max")
+    widest_c = np.zeros(n_compounds, dtype=np.int64)
+    compound_of_group = np.zeros(n_groups, dtype=np.int64)
+    compound_of_group[group] = compound
+    np.maximum.at(widest_c, compound_of_group, n_rows_g)
+    widest = widest_c[compound]
     all_missing = n_known == 0
-    clean = all_missing & (n_pka == n_rows) & ~any_dup
-    lone = n_rows == 1
-    covers = (widest <= n_rows) & ((k_n == 0) | (k_max <= n_rows).fillna(True))
+    clean = all_missing & (n_pka == n_rows_of) & ~any_dup
+    lone = n_rows_of == 1
+    # a compound without a known step has k_max NaN: it never limits the group
+    covers = (widest <= n_rows_of) & ((k_n == 0) | ~(k_max > n_rows_of))
     rule_rank = clean & ~lone & covers
     rule_lone_free = clean & lone & (k_n == 0) & (widest == 1)
     rule_lone_known = clean & lone & (k_n == 1) & (widest == 1)
-    inferred = (rule_rank | rule_lone_free | rule_lone_known).to_numpy(dtype=bool)
+    inferred = rule_rank | rule_lone_free | rule_lone_known
 
-    value = np.where(
-        rule_lone_known, k_only.fillna(0).to_numpy(dtype=float), rank.fillna(0).to_numpy()
-    )
+    # rank of the pKa within its group (ascending), needed only where rule 2 ranks a group
+    # (all its pKa values present and distinct; a lone value has rank 1)
+    rank = np.ones(n_rows, dtype=np.int64)
+    ranked = np.flatnonzero(rule_rank)
+    if len(ranked):
+        order = ranked[np.lexsort((pka[ranked], group[ranked]))]
+        sorted_group = group[order]
+        starts = np.flatnonzero(np.r_[True, sorted_group[1:] != sorted_group[:-1]])
+        sizes = np.diff(np.r_[starts, len(order)])
+        rank[order] = np.arange(len(order)) - np.repeat(starts, sizes) + 1
+
+    value = np.where(rule_lone_known, np.nan_to_num(k_only), rank)
     filled = step.copy()
     filled[inferred] = value[inferred].astype(np.int64)
 
-    missing_step = ~known.to_numpy(dtype=bool)
-    note = np.select(
+    missing_step = ~known
+    reason = np.select(
         [
             ~missing_step | inferred,
-            ~all_missing.to_numpy(),
-            work["pka"].isna().to_numpy() | (n_pka != n_rows).to_numpy(),
-            any_dup.to_numpy(),
-            (clean & lone & (k_n > 1)).to_numpy(),
-            (clean & (widest > n_rows)).to_numpy(),
+            ~all_missing,
+            ~has_pka | (n_pka != n_rows_of),
+            any_dup,
+            clean & lone & (k_n > 1),
+            clean & (widest > n_rows_of),
         ],
+        np.arange(6),
+        default=6,
+    )
+    notes = np.array(
         [
             None,
             "other rows of this source, compound and condition carry steps; a partial set is not completed",
@@ -1247,14 +1568,20 @@ def infer_steps(frame: pd.DataFrame) -> pd.DataFrame:
             "repeated pKa values in this group; their order is ambiguous",
             "single value without step; the compound has several known steps elsewhere",
             "another source or condition lists more values for this compound; the group may be a subset",
+            "the compound has a higher known step elsewhere than this group holds; the group may be a subset",
         ],
-        default="the compound has a higher known step elsewhere than this group holds; the group may be a subset",
+        dtype=object,
     )
     return pd.DataFrame(
         {
             "step": pd.Series(filled, index=index, dtype="Int64"),
             "step_inferred": pd.Series(inferred, index=index, dtype=bool),
-            "step_note": pd.Series(note, index=index, dtype=object),
+            "step_note": pd.Series(notes[reason], index=index, dtype=object),
         },
         index=index,
     )
+
+
+def _group_codes(values: np.ndarray) -> np.ndarray:
+    """Codes 0..k-1 of the distinct values, missing values sharing one code of their own."""
+    return pd.factorize(values, use_na_sentinel=False)[0].astype(np.int64, copy=False)
