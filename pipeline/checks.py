@@ -348,6 +348,53 @@ def _u_filled(m: pd.DataFrame, config: dict) -> pd.Series:
     return m["pka_uncertainty"].fillna(config.get("default_uncertainty", DEFAULT_UNCERTAINTY))
 
 
+def _key_codes(*columns: pd.Series | np.ndarray) -> np.ndarray:
+    """Dense integer id (0, 1, ...) per row of the distinct combinations of ``columns``; a missing
+    value is a key of its own (as ``groupby(dropna=False)``). One factorization per column."""
+    codes = np.zeros(len(columns[0]), dtype=np.int64)
+    for column in columns:
+        column_codes, uniques = pd.factorize(column, use_na_sentinel=False)
+        codes = pd.factorize(codes * len(uniques) + column_codes)[0]
+    return codes
+
+
+def _first_per_group(group: np.ndarray, *keys: np.ndarray) -> np.ndarray:
+    """Position of the first row of each group after sorting by ``keys`` (the first key decides
+    first); ties keep the original order. Groups come out in ascending id order."""
+    order = np.lexsort((np.arange(len(group)), *reversed(keys), group))
+    head = np.r_[True, group[order][1:] != group[order][:-1]]
+    return order[head]
+
+
+def _leave_one_out_fits(
+    series: np.ndarray, t: np.ndarray, pka: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """For each node, the van 't Hoff fit through the *other* nodes of its series, with the node's
+    temperature as reference temperature: (prediction, u²(prediction) + s², number of other nodes).
+
+    ``series`` must be sorted (the nodes of a series contiguous). ΔCp° is fitted when five or more
+    other nodes remain (:func:`pipeline.physchem.fit_van_t_hoff_groups`, one pass for all fits).
+    """
+    starts, sizes = np.unique(series, return_index=True, return_counts=True)[1:]
+    node = np.arange(len(series))
+    size = np.repeat(sizes, sizes)  # per node: nodes in its series
+    first = np.repeat(starts, sizes)  # per node: position of its series' first node
+    # every (left-out node, other node) pair of a series: size² pairs per series, self-pairs dropped
+    left_out = np.repeat(node, size)
+    other = np.repeat(first, size) + np.arange(len(left_out)) - np.repeat(np.cumsum(size) - size, size)
+    keep = other != left_out
+    left_out, other = left_out[keep], other[keep]
+    n_other = size - 1
+    fit = physchem.fit_van_t_hoff_groups(left_out, t[other], pka[other], t, n_other >= 5)
+    spread = fit.covariance[:, 0, 0] + fit.chi_squared / fit.dof
+    # other nodes of one pKa: fit_van_t_hoff (curve_fit) reports an infinite covariance there
+    # (ΔH° ~ 0 leaves its finite-difference Jacobian column zero), so such a node is not judged
+    bounds = np.r_[0, np.cumsum(n_other)[:-1]]
+    flat = np.maximum.reduceat(pka[other], bounds) == np.minimum.reduceat(pka[other], bounds)
+    spread[flat] = np.inf
+    return fit.pka_ref, spread, n_other
+
+
 @rule(
     "van_t_hoff_outlier",
     "warning",
@@ -362,9 +409,11 @@ def _van_t_hoff(m: pd.DataFrame, config: dict) -> RuleResult:
     273.15-373.15 K. Each temperature is a node: the median of its values (so one wrong value
     among several at one temperature does not move the curve; that case is
     ``source_disagreement``'s). For each node the integrated van 't Hoff equation
-    (:func:`pipeline.physchem.fit_van_t_hoff`, ref. [3]) is fitted to the *other* nodes, with
+    (least squares as :func:`pipeline.physchem.fit_van_t_hoff`, ref. [3]; all fits of a round in one
+    pass of :func:`pipeline.physchem.fit_van_t_hoff_groups`) is fitted to the *other* nodes, with
     the left-out temperature as reference temperature, so the fitted pKa(θ) is the prediction
-    and its variance the covariance's first element. ΔCp° is fitted when five or more nodes
+    and its variance the covariance's first element. A node whose other nodes all have one pKa is
+    not judged (``fit_van_t_hoff`` finds no covariance for such a flat curve). ΔCp° is fitted when five or more nodes
     remain, else ΔH° is taken as constant (four points do not pin a curvature). The normalized
     residual is (observed − predicted) / √(u² + u²(predicted) + s²), with u the value's
     uncertainty (``default_uncertainty`` when missing) and s the residual standard deviation of
@@ -377,64 +426,57 @@ def _van_t_hoff(m: pd.DataFrame, config: dict) -> RuleResult:
     """
     limit = config.get("max_normalized_residual", MAX_NORMALIZED_RESIDUAL)
     min_t = config.get("min_temperatures", 4)
-    ok = _comparable(m) & m["temperature_k"].between(physchem.T_MIN_K, physchem.T_MAX_K)
-    f = pd.DataFrame(
-        {
-            "compound_id": m["compound_id"],
-            "step": m["step"].fillna(0).astype("int64"),
-            "i": m["ionic_strength_molal"].round(3),
-            "ctype": m["constant_type"],
-            "t": m["temperature_k"].round(1),
-            "pka": m["pka"],
-            "u": _u_filled(m, config),
-        },
-        index=m.index,
-    )[ok]
-    series = ["compound_id", "step", "i", "ctype"]
-    nodes = f.groupby(series + ["t"], sort=True).agg(pka=("pka", "median"), u=("u", "median")).reset_index()
-    nodes = nodes[nodes.groupby(series)["t"].transform("size") >= min_t].reset_index(drop=True)
-    if nodes.empty:
+    ok = (_comparable(m) & m["temperature_k"].between(physchem.T_MIN_K, physchem.T_MAX_K)).to_numpy()
+    sub = m[ok]
+    series_of_row = _key_codes(sub["compound_id"], sub["step"].fillna(0).astype("int64"),
+                               sub["ionic_strength_molal"].round(3), sub["constant_type"])
+    t_of_row = sub["temperature_k"].round(1).to_numpy()
+    node_of_row = _key_codes(series_of_row, t_of_row)
+    # series with >= min_t temperatures; only their rows form nodes
+    first_row_of_node = np.unique(node_of_row, return_index=True)[1]
+    temperatures = np.bincount(series_of_row[first_row_of_node], minlength=series_of_row.max(initial=-1) + 1)
+    in_series = temperatures[series_of_row] >= min_t
+    if not in_series.any():
         return _empty(m)
-    t_all, p_all, u_all = (nodes[c].to_numpy(dtype=float) for c in ("t", "pka", "u"))
+    rows = pd.DataFrame({"series": series_of_row[in_series], "t": t_of_row[in_series],
+                         "pka": sub["pka"].to_numpy()[in_series],
+                         "u": _u_filled(sub, config).to_numpy()[in_series]},
+                        index=sub.index[in_series])
+    rows["node"] = _key_codes(rows["series"], rows["t"])
+    # a node is the median of the values at one temperature; nodes sorted by series, then temperature
+    nodes = rows.groupby("node").agg(series=("series", "first"), t=("t", "first"),
+                                     pka=("pka", "median"), u=("u", "median"))
+    nodes = nodes.sort_values(["series", "t"])
+    node_position = np.empty(len(nodes), dtype=np.int64)
+    node_position[nodes.index.to_numpy()] = np.arange(len(nodes))
+    rows["node"] = node_position[rows["node"].to_numpy()]
+    series, t_all, p_all, u_all = (nodes[c].to_numpy() for c in ("series", "t", "pka", "u"))
     predicted = np.full(len(nodes), np.nan)
     spread = np.full(len(nodes), np.nan)  # u²(predicted) + s² [pK units²]
-    n_fit = np.zeros(len(nodes), dtype=int)
+    n_fit = np.zeros(len(nodes), dtype=np.int64)
     z_node = np.zeros(len(nodes))
     set_aside = np.zeros(len(nodes), dtype=bool)
-
-    def leave_one_out(active: np.ndarray) -> None:
-        for k in active:
-            others = active[active != k]
-            with_cp = len(others) >= 5
-            fit = physchem.fit_van_t_hoff(t_all[others], p_all[others], with_heat_capacity=with_cp,
-                                          t_ref_k=float(t_all[k]))
-            dof = len(others) - (3 if with_cp else 2)
-            predicted[k] = fit.pka_ref
-            spread[k] = float(fit.covariance[0, 0]) + float(np.sum(fit.residuals**2)) / dof
-            n_fit[k] = len(others)
+    # rounds over all series at once: test every active node against the others; in each series whose
+    # worst node is beyond the limit, set that node aside and test the rest again in the next round
+    active = np.arange(len(nodes))
+    while len(active):
+        predicted[active], spread[active], n_fit[active] = _leave_one_out_fits(
+            series[active], t_all[active], p_all[active])
         z_node[active] = (p_all[active] - predicted[active]) / np.sqrt(u_all[active] ** 2 + spread[active])
-
-    # one loop over the few series with >= min_t temperatures, one fit per left-out node; the worst
-    # node beyond the limit is set aside and the rest re-tested, so one outlier cannot make a good
-    # end point look bad through a curve bent towards it
-    for idx in nodes.groupby(series, sort=False).indices.values():
-        active = np.asarray(idx)
-        while len(active) >= min_t:
-            leave_one_out(active)
-            worst = active[np.argmax(np.abs(z_node[active]))]
-            if abs(z_node[worst]) <= limit:
-                break
-            set_aside[worst] = True
-            active = active[active != worst]
-    nodes["predicted"] = predicted
-    nodes["spread"] = spread
-    nodes["n_fit"] = n_fit
-    nodes["z_node"] = z_node
-    nodes["set_aside"] = set_aside
-    points = f.reset_index().merge(nodes.drop(columns=["pka", "u"]), on=series + ["t"], how="inner").set_index("index")
-    points["z"] = (points["pka"] - points["predicted"]) / np.sqrt(points["u"] ** 2 + points["spread"])
-    bad = points["set_aside"] & (points["z"].abs() > limit)
-    bad_rows = points[bad]
+        z = np.abs(z_node[active])
+        # the worst node of each series as np.argmax takes it: NaN first, then the largest, the first of ties
+        worst = active[_first_per_group(series[active], ~np.isnan(z), -np.nan_to_num(z, nan=0.0))]
+        beyond = worst[~(np.abs(z_node[worst]) <= limit)]
+        set_aside[beyond] = True
+        still = np.isin(series[active], series[beyond]) & ~set_aside[active]
+        active = active[still]
+        active = active[np.bincount(series[active], minlength=series.max() + 1)[series[active]] >= min_t]
+    flagged_node = set_aside[rows["node"].to_numpy()]
+    points = rows[flagged_node]
+    node = points["node"].to_numpy()
+    points = points.assign(predicted=predicted[node], n_fit=n_fit[node])
+    points["z"] = (points["pka"] - points["predicted"]) / np.sqrt(points["u"] ** 2 + spread[node])
+    bad_rows = points[points["z"].abs() > limit].sort_index()
     message = (
         "pKa " + _fmt(bad_rows["pka"]) + " at " + _fmt(m.loc[bad_rows.index, "temperature_k"], 2) + " K is "
         + (bad_rows["pka"] - bad_rows["predicted"]).map("{:+.3f}".format)
