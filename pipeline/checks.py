@@ -100,17 +100,27 @@ def _result(
     return RuleResult(m.loc[mask, "value_id"], message[mask].astype(str))
 
 
-def _fmt(x: pd.Series | np.ndarray, digits: int = 3) -> pd.Series:
-    """``x`` rounded to ``digits`` as text (``str`` of each float), aligned with ``x``.
+def _as_text(values: pd.Series | np.ndarray, before: str = "", after: str = "") -> pd.Series:
+    """``before + str(value) + after`` per value, aligned with ``values`` (object strings).
 
-    Each distinct rounded value is formatted once: float-to-text is the dearest step of a message
-    column, and findings repeat the same few thousand values.
+    Each distinct value is formatted once: number-to-text is the dearest step of a message column,
+    and findings repeat the same few thousand values. Floats are told apart by their bits, so that
+    -0.0 keeps its sign as ``str`` gives it.
     """
+    array = np.asarray(values)
+    keys = array.view(np.int64) if array.dtype == np.float64 else array
+    distinct, inverse = np.unique(keys, return_inverse=True)
+    if array.dtype == np.float64:
+        distinct = distinct.view(np.float64)
+    text = (before + pd.Series(distinct, dtype=array.dtype).astype(str).astype(object) + after).to_numpy()
+    return pd.Series(text[inverse.reshape(-1)], index=values.index if isinstance(values, pd.Series) else None,
+                     dtype=object)
+
+
+def _fmt(x: pd.Series | np.ndarray, digits: int = 3, before: str = "", after: str = "") -> pd.Series:
+    """``x`` rounded to ``digits`` as text, aligned with ``x``; see :func:`_as_text`."""
     rounded = np.round(np.asarray(x, dtype=float), digits)
-    # distinct bit patterns, so that -0.0 keeps its sign as str() gives it
-    bits, inverse = np.unique(rounded.view(np.int64), return_inverse=True)
-    text = pd.Series(bits.view(np.float64)).astype(str).to_numpy(dtype=object)[inverse.reshape(-1)]
-    return pd.Series(text, index=x.index if isinstance(x, pd.Series) else None, dtype=object)
+    return _as_text(pd.Series(rounded, index=x.index) if isinstance(x, pd.Series) else rounded, before, after)
 
 
 #: Text key columns of the group rules. :func:`run_rules` hands every rule their integer codes in
@@ -172,9 +182,10 @@ def _key_codes(*columns: pd.Series | np.ndarray) -> np.ndarray:
     codes, n_codes = np.zeros(len(columns[0]), dtype=np.int64), 1
     for column in columns:
         values = np.asarray(column)
-        if values.dtype.kind in "iu" and len(values) and values.max() - values.min() < 2**31:
+        if values.dtype.kind in "iu" and len(values) and values.max() - values.min() < 8 * len(values) + 1024:
             low = values.min()
-            column_codes, n_column = values.astype(np.int64) - low, int(values.max() - low) + 1
+            column_codes = _dense(values.astype(np.int64) - low, int(values.max() - low) + 1)
+            n_column = int(column_codes.max()) + 1
         else:
             column_codes, uniques = pd.factorize(column, use_na_sentinel=False)
             n_column = max(len(uniques), 1)
@@ -346,11 +357,19 @@ def _ka_kb_kw(m: pd.DataFrame, config: dict) -> RuleResult:
     """Each pKa converted from a pKb or Kb (through pKw) against the median of the pKa values given
     directly for the same compound, step (none = 0), temperature (0.1 K), ionic strength
     (0.001 mol/kg) and constant type; bounds are left out."""
-    sub = _rows(m, m["qualifier"].isna(), ["compound_id", "temperature_k", "ionic_strength_molal", "constant_type", "step",
-                                           "quantity_reported", "pka", "pka_uncertainty", "pkw_used"])
-    group = _key_codes(_codes(sub, "compound_id"), _rounded(sub["temperature_k"], 1), _rounded(sub["ionic_strength_molal"], 3),
-                       _codes(sub, "constant_type"), sub["step"].fillna(0).astype("int64"))
-    from_base = sub["quantity_reported"].isin(["pKb", "Kb"]).to_numpy()
+    unbounded = m["qualifier"].isna().to_numpy()
+    from_base = m["quantity_reported"].isin(["pKb", "Kb"]).to_numpy()
+    # only the compounds with a value from a base have pairs to check
+    compound = _codes(m, "compound_id")
+    involved = np.zeros(compound.max(initial=-1) + 1, dtype=bool)
+    involved[compound[unbounded & from_base]] = True
+    used = unbounded & involved[compound]
+    sub = _rows(m, used, ["compound_id", "temperature_k", "ionic_strength_molal", "constant_type", "step", "pka",
+                          "pka_uncertainty", "pkw_used"])
+    from_base = from_base[used]
+    group = _key_codes(_codes(sub, "compound_id"), _rounded(sub["temperature_k"], 1),
+                       _rounded(sub["ionic_strength_molal"], 3), _codes(sub, "constant_type"),
+                       sub["step"].fillna(0).astype("int64"))
     # only the groups that hold a value from a base need the median of the direct values
     wanted = np.zeros(group.max(initial=-1) + 1, dtype=bool)
     wanted[group[from_base]] = True
@@ -432,6 +451,14 @@ def _u_filled(m: pd.DataFrame, config: dict) -> pd.Series:
     return m["pka_uncertainty"].fillna(config.get("default_uncertainty", DEFAULT_UNCERTAINTY))
 
 
+def _distinct_per_group(group: np.ndarray, values: np.ndarray) -> np.ndarray:
+    """Number of distinct ``values`` in each group (indexed by the dense group id)."""
+    pairs = _key_codes(group, values)
+    group_of_pair = np.zeros(pairs.max(initial=-1) + 1, dtype=np.int64)
+    group_of_pair[pairs] = group
+    return np.bincount(group_of_pair, minlength=group.max(initial=-1) + 1)
+
+
 def _first_per_group(group: np.ndarray, *keys: np.ndarray) -> np.ndarray:
     """Position of the first row of each group after sorting by ``keys`` (the first key decides
     first); ties keep the original order. Groups come out in ascending id order."""
@@ -500,28 +527,29 @@ def _van_t_hoff(m: pd.DataFrame, config: dict) -> RuleResult:
     """
     limit = config.get("max_normalized_residual", MAX_NORMALIZED_RESIDUAL)
     min_t = config.get("min_temperatures", 4)
-    ok = (_comparable(m) & m["temperature_k"].between(physchem.T_MIN_K, physchem.T_MAX_K)).to_numpy()
-    sub = _rows(m, ok, ["compound_id", "step", "ionic_strength_molal", "constant_type", "temperature_k", "pka", "pka_uncertainty"])
+    ok = (_comparable(m) & m["temperature_k"].between(physchem.T_MIN_K, physchem.T_MAX_K)).to_numpy(copy=True)
+    # a series needs min_t temperatures, and so does its compound: a cheap first cut
+    compound = _codes(m, "compound_id")[ok]
+    ok[ok] = _distinct_per_group(compound, _rounded(m["temperature_k"].to_numpy()[ok], 1))[compound] >= min_t
+    sub = _rows(m, ok, ["compound_id", "step", "ionic_strength_molal", "constant_type", "temperature_k", "pka",
+                        "pka_uncertainty"])
     series_of_row = _key_codes(_codes(sub, "compound_id"), sub["step"].fillna(0).astype("int64"),
                                _rounded(sub["ionic_strength_molal"], 3), _codes(sub, "constant_type"))
     t_of_row = sub["temperature_k"].round(1).to_numpy()
-    node_of_row = _key_codes(series_of_row, _rounded(t_of_row, 1))
     # series with >= min_t temperatures; only their rows form nodes
-    first_row_of_node = np.unique(node_of_row, return_index=True)[1]
-    temperatures = np.bincount(series_of_row[first_row_of_node], minlength=series_of_row.max(initial=-1) + 1)
-    in_series = temperatures[series_of_row] >= min_t
+    in_series = _distinct_per_group(series_of_row, _rounded(t_of_row, 1))[series_of_row] >= min_t
     if not in_series.any():
         return _empty(m)
     rows = pd.DataFrame({"series": series_of_row[in_series], "t": t_of_row[in_series],
                          "pka": sub["pka"].to_numpy()[in_series],
                          "u": _u_filled(sub, config).to_numpy()[in_series]},
                         index=sub.index[in_series])
-    rows["node"] = node_of_row[in_series]
+    rows["node"] = _key_codes(rows["series"], _rounded(rows["t"], 1))
     # a node is the median of the values at one temperature; nodes sorted by series, then temperature
     nodes = rows.groupby("node").agg(series=("series", "first"), t=("t", "first"),
                                      pka=("pka", "median"), u=("u", "median"))
     nodes = nodes.sort_values(["series", "t"])
-    node_position = np.empty(node_of_row.max() + 1, dtype=np.int64)
+    node_position = np.empty(len(nodes), dtype=np.int64)
     node_position[nodes.index.to_numpy()] = np.arange(len(nodes))
     rows["node"] = node_position[rows["node"].to_numpy()]
     series, t_all, p_all, u_all = (nodes[c].to_numpy() for c in ("series", "t", "pka", "u"))
@@ -689,32 +717,38 @@ def _source_disagreement(m: pd.DataFrame, config: dict) -> RuleResult:
     def per_group_sum(values: np.ndarray) -> np.ndarray:
         return np.bincount(gid, weights=np.asarray(values, dtype=float))[gid]
 
-    def per_group_median(values: np.ndarray) -> np.ndarray:
-        return pd.Series(values).groupby(gid).median().to_numpy()[gid]
-
     n = per_group_sum(np.ones(len(x)))
     w = 1.0 / u**2
     wmean = per_group_sum(w * x) / per_group_sum(w)
     birge = np.sqrt(per_group_sum(w * (x - wmean) ** 2) / (n - 1))
     pair = n == 2
-    x_ref = np.where(pair, per_group_sum(x) - x, per_group_median(x))
+    # medians are needed for groups of three or more only: one groupby for both columns
+    medians = pd.DataFrame({"x": x[~pair], "u": u[~pair]}).groupby(gid[~pair]).median()
+    median_row = np.zeros(gid.max() + 1, dtype=np.int64)
+    median_row[medians.index.to_numpy()] = np.arange(len(medians))
+    x_median, u_median = np.full(len(x), np.nan), np.full(len(x), np.nan)
+    x_median[~pair] = medians["x"].to_numpy()[median_row[gid[~pair]]]
+    u_median[~pair] = medians["u"].to_numpy()[median_row[gid[~pair]]]
+    x_ref = np.where(pair, per_group_sum(x) - x, x_median)
     u_ref = np.where(pair, np.sqrt((per_group_sum(u**2) - u**2).clip(min=0)),
-                     MEDIAN_SE_FACTOR * per_group_median(u) / np.sqrt(n))
+                     MEDIAN_SE_FACTOR * u_median / np.sqrt(n))
     z = (x - x_ref) / np.sqrt(u**2 + u_ref**2)
     bad = (birge > birge_limit) & (np.abs(z) > z_limit)
     rows = f.index[member][bad]
     assumed = m.loc[rows, "pka_uncertainty"].isna().to_numpy()
-    n_text = n[bad].astype(int).astype(str).astype(object)
+    compared_with = np.where(pair[bad], "other value ",
+                             _as_text(n[bad].astype(int), "median of the ", " independent values ").to_numpy())
+    # few pieces, each formatted on distinct values: every "+" walks all the failing rows again
     message = (
-        "pKa " + _fmt(x[bad]).to_numpy() + " ± " + _fmt(u[bad]).to_numpy()
-        + np.where(assumed, " (uncertainty assumed)", "").astype(object)
-        + " disagrees with the "
-        + np.where(pair[bad], "other value ", ("median of the " + n_text + " independent values ").astype(str)).astype(object)
-        + _fmt(x_ref[bad]).to_numpy() + " at the same conditions: normalized residual "
-        + _fmt(z[bad], 1).to_numpy() + f" (limit {z_limit:g}), Birge ratio " + _fmt(birge[bad], 2).to_numpy()
-        + f" (limit {birge_limit:g})"
+        _fmt(x[bad], before="pKa ").to_numpy() + _fmt(u[bad], before=" ± ").to_numpy()
+        + np.where(assumed, " (uncertainty assumed) disagrees with the ", " disagrees with the ").astype(object)
+        + compared_with.astype(object)
+        + _fmt(x_ref[bad], after=" at the same conditions: normalized residual ").to_numpy()
+        + _fmt(z[bad], 1, after=f" (limit {z_limit:g}), Birge ratio ").to_numpy()
+        + _fmt(birge[bad], 2, after=f" (limit {birge_limit:g})").to_numpy()
     )
     return RuleResult(m.loc[rows, "value_id"], pd.Series(message, index=rows, dtype=object).astype(str))
+
 
 def run_rules(measurements: pd.DataFrame, config: dict | None = None) -> pd.DataFrame:
     """Run every enabled rule; return all findings (schema ``FINDINGS``).
