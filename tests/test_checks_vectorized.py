@@ -1,4 +1,4 @@
-"""Vectorized paths of the rules: the grouped van 't Hoff fit agrees with the one-group fit.
+"""Vectorized paths of the rules agree with their one-group-at-a-time definitions.
 
 Tris: pKa(25 °C) 8.072, ΔH° 47.45 kJ/mol, ΔCp° -59 J/(K mol) (Goldberg, Kishore & Lennen 2002,
 J. Phys. Chem. Ref. Data 31, 231). Noise and the second, flatter series are made up for the test.
@@ -6,10 +6,13 @@ J. Phys. Chem. Ref. Data 31, 231). Noise and the second, flatter series are made
 
 from __future__ import annotations
 
+import warnings
+
 import numpy as np
 import pytest
+from test_checks import T25, make_measurements
 
-from pipeline import physchem
+from pipeline import checks, physchem
 
 
 @pytest.mark.parametrize("weighted", [False, True])
@@ -42,3 +45,56 @@ def test_grouped_van_t_hoff_fits_equal_one_fit_per_group(weighted: bool) -> None
 def test_grouped_van_t_hoff_needs_more_points_than_parameters() -> None:
     with pytest.raises(ValueError, match="2 points given in group 0; fitting 2 parameters needs at least 3"):
         physchem.fit_van_t_hoff_groups([0, 0], [288.15, 298.15], [4.8, 4.76], [298.15], [False])
+
+
+def _one_series_at_a_time(t: np.ndarray, pka: np.ndarray, u: np.ndarray, limit: float = 3.0,
+                          min_t: int = 4) -> set[int]:
+    """The van 't Hoff rule for one series of nodes, one scipy fit per left-out node (the rule's
+    definition, written as a loop): indices of the nodes set aside whose |z| exceeds the limit."""
+    active, flagged = np.arange(len(t)), set()
+    z = np.zeros(len(t))
+    while len(active) >= min_t:
+        for k in active:
+            others = active[active != k]
+            with_cp = len(others) >= 5
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")  # a flat curve: curve_fit finds no covariance
+                fit = physchem.fit_van_t_hoff(t[others], pka[others], with_heat_capacity=with_cp, t_ref_k=float(t[k]))
+            spread = float(fit.covariance[0, 0]) + float(np.sum(fit.residuals**2)) / (len(others) - (3 if with_cp else 2))
+            z[k] = (pka[k] - fit.pka_ref) / np.sqrt(u[k] ** 2 + spread)
+        worst = active[np.argmax(np.abs(z[active]))]
+        if abs(z[worst]) <= limit:
+            break
+        flagged.add(int(worst))
+        active = active[active != worst]
+    return flagged
+
+
+def test_van_t_hoff_rule_equals_one_fit_per_left_out_node() -> None:
+    # made-up series of 4 to 8 temperatures around Tris-like curves, some with one or two outliers,
+    # one flat series with an outlier (not judged: no covariance for the flat other nodes)
+    rng = np.random.default_rng(11)
+    temperatures = np.array([278.15, 283.15, 288.15, 293.15, 298.15, 303.15, 310.15, 318.15])
+    rows, expected = [], set()
+    for s in range(40):
+        n = 4 + s % 5
+        t = np.sort(rng.choice(temperatures, n, replace=False))
+        pka = np.round(physchem.van_t_hoff(6.0 + s / 10, T25, t, 20000.0 + 1000.0 * s, -50.0).value
+                       + rng.normal(0, 0.004, n), 3)
+        first = int(rng.integers(n))
+        if s % 3 == 0:
+            pka[first] += 0.25
+        if s % 6 == 0:  # a second outlier: two rounds of setting aside
+            pka[(first + n // 2) % n] -= 0.4
+        if s == 39:
+            pka[:] = 5.0
+            pka[2] = 6.0
+        u = rng.choice([0.003, 0.006, 0.01], n)
+        expected |= {(f"c{s}", float(t[k])) for k in _one_series_at_a_time(t, pka, u)}
+        rows += [{"compound_id": f"c{s}", "pka": p, "temperature_k": x, "pka_uncertainty": v}
+                 for x, p, v in zip(t, pka, u, strict=True)]
+    m = make_measurements(rows)
+    result = checks.RULES["van_t_hoff_outlier"].function(m, {})
+    found = m.set_index("value_id").loc[result.value_id, ["compound_id", "temperature_k"]]
+    assert set(zip(found["compound_id"], found["temperature_k"], strict=True)) == expected
+    assert expected and not any(c == "c39" for c, _ in expected)
