@@ -514,8 +514,9 @@ def _van_t_hoff(m: pd.DataFrame, config: dict) -> RuleResult:
     pass of :func:`pipeline.physchem.fit_van_t_hoff_groups`) is fitted to the *other* nodes, with
     the left-out temperature as reference temperature, so the fitted pKa(θ) is the prediction
     and its variance the covariance's first element. A node whose other nodes all have one pKa is
-    not judged (``fit_van_t_hoff`` finds no covariance for such a flat curve). ΔCp° is fitted when five or more nodes
-    remain, else ΔH° is taken as constant (four points do not pin a curvature). The normalized
+    not judged (``fit_van_t_hoff`` finds no covariance for such a flat curve). ΔCp° is fitted when
+    five or more nodes remain, else ΔH° is taken as constant (four points do not pin a curvature).
+    The normalized
     residual is (observed − predicted) / √(u² + u²(predicted) + s²), with u the value's
     uncertainty (``default_uncertainty`` when missing) and s the residual standard deviation of
     the fit. A node whose |normalized residual| exceeds ``max_normalized_residual`` (default 3)
