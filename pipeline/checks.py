@@ -100,8 +100,101 @@ def _result(
     return RuleResult(m.loc[mask, "value_id"], message[mask].astype(str))
 
 
-def _fmt(x: pd.Series, digits: int = 3) -> pd.Series:
-    return x.round(digits).astype(str)
+def _as_text(values: pd.Series | np.ndarray, before: str = "", after: str = "") -> pd.Series:
+    """``before + str(value) + after`` per value, aligned with ``values`` (object strings).
+
+    Each distinct value is formatted once: number-to-text is the dearest step of a message column,
+    and findings repeat the same few thousand values. Floats are told apart by their bits, so that
+    -0.0 keeps its sign as ``str`` gives it.
+    """
+    array = np.asarray(values)
+    keys = array.view(np.int64) if array.dtype == np.float64 else array
+    distinct, inverse = np.unique(keys, return_inverse=True)
+    if array.dtype == np.float64:
+        distinct = distinct.view(np.float64)
+    text = (before + pd.Series(distinct, dtype=array.dtype).astype(str).astype(object) + after).to_numpy()
+    return pd.Series(text[inverse.reshape(-1)], index=values.index if isinstance(values, pd.Series) else None,
+                     dtype=object)
+
+
+def _fmt(x: pd.Series | np.ndarray, digits: int = 3, before: str = "", after: str = "") -> pd.Series:
+    """``x`` rounded to ``digits`` as text, aligned with ``x``; see :func:`_as_text`."""
+    rounded = np.round(np.asarray(x, dtype=float), digits)
+    return _as_text(pd.Series(rounded, index=x.index) if isinstance(x, pd.Series) else rounded, before, after)
+
+
+#: Text key columns of the group rules. :func:`run_rules` hands every rule their integer codes in
+#: hidden columns (``_code_<name>``), and the :func:`_comparable` mask in ``_comparable``:
+#: factorizing a million strings is the dearest step of a group rule, and once per build is enough.
+CODED_COLUMNS = ("compound_id", "source_id", "constant_type")
+_COMPARABLE = "_comparable"
+
+
+def _code_column(name: str) -> str:
+    return f"_code_{name}"
+
+
+def with_rule_keys(m: pd.DataFrame) -> pd.DataFrame:
+    """``m`` (a shallow copy) with the hidden columns that the rules share (see :data:`CODED_COLUMNS`)."""
+    shared = {_code_column(c): pd.factorize(m[c], use_na_sentinel=False)[0] for c in CODED_COLUMNS}
+    return m.assign(**shared, **{_COMPARABLE: _comparable(m)})
+
+
+def _codes(m: pd.DataFrame, name: str) -> np.ndarray:
+    """Integer code per row of the text column ``name`` (equal texts, equal codes)."""
+    if _code_column(name) in m.columns:
+        return m[_code_column(name)].to_numpy()
+    return pd.factorize(m[name], use_na_sentinel=False)[0]
+
+
+def _rows(m: pd.DataFrame, mask: pd.Series | np.ndarray, columns: list[str]) -> pd.DataFrame:
+    """The ``columns`` of the rows under ``mask``; a text key column comes as its codes when
+    :func:`run_rules` gave them (read it with :func:`_codes`). A group rule reads a few columns, and
+    copying all of a million measurement rows, strings included, costs more than the rule."""
+    wanted = [_code_column(c) if _code_column(c) in m.columns else c for c in columns]
+    return m.loc[np.asarray(mask, dtype=bool), wanted]
+
+
+def _rounded(x: pd.Series | np.ndarray, digits: int) -> np.ndarray:
+    """Key of ``x`` rounded to ``digits``: the integer rint(x·10^digits) (what ``round`` divides by
+    10^digits, so equal keys, equal rounded values), or the rounded floats where some are missing."""
+    values = np.asarray(x, dtype=float)
+    scaled = np.rint(values * 10.0**digits)
+    if len(scaled) and np.isfinite(scaled).all() and np.abs(scaled).max() < 2**52:
+        return scaled.astype(np.int64)
+    return np.round(values, digits)
+
+
+def _dense(codes: np.ndarray, n_codes: int) -> np.ndarray:
+    """Codes 0..n_codes-1 renumbered 0, 1, ... without gaps (by a presence table when it is small,
+    which is faster than hashing a million codes)."""
+    if n_codes > 8 * len(codes) + 1024:
+        return pd.factorize(codes)[0]
+    present = np.zeros(n_codes, dtype=bool)
+    present[codes] = True
+    return (np.cumsum(present, dtype=np.int64) - 1)[codes]
+
+
+def _key_codes(*columns: pd.Series | np.ndarray) -> np.ndarray:
+    """Integer id per row of the distinct combinations of ``columns``, dense from 0; a missing value
+    is a key of its own (as ``groupby(dropna=False)``). Integer columns (codes from :func:`_codes`,
+    :func:`_rounded`) are used as they are, others factorized."""
+    codes, n_codes = np.zeros(len(columns[0]), dtype=np.int64), 1
+    for column in columns:
+        values = np.asarray(column)
+        if values.dtype.kind in "iu" and len(values) and values.max() - values.min() < 8 * len(values) + 1024:
+            low = values.min()
+            column_codes = _dense(values.astype(np.int64) - low, int(values.max() - low) + 1)
+            n_column = int(column_codes.max()) + 1
+        else:
+            column_codes, uniques = pd.factorize(column, use_na_sentinel=False)
+            n_column = max(len(uniques), 1)
+        if n_codes * n_column >= 2**62:  # renumber before the mixed-radix code would overflow
+            codes = _dense(codes, n_codes)
+            n_codes = int(codes.max(initial=0)) + 1
+        codes = codes * n_column + column_codes
+        n_codes *= n_column
+    return _dense(codes, n_codes)
 
 
 @rule("pka_physical_bounds", "error", "pKa outside any physical aqueous value (-15 to 35)")
@@ -188,30 +281,12 @@ def _conditions(m: pd.DataFrame, config: dict) -> RuleResult:
     )
 
 
-def _condition_key(m: pd.DataFrame) -> pd.DataFrame:
-    return pd.DataFrame(
-        {
-            "compound_id": m["compound_id"],
-            "t": m["temperature_k"].round(1),
-            "i": m["ionic_strength_molal"].round(3),
-            "ctype": m["constant_type"],
-        },
-        index=m.index,
-    )
-
-
-def _group_ids(frame: pd.DataFrame, columns: list[str]) -> np.ndarray:
-    """Integer id per row of the distinct combinations of ``columns`` (one factorization per column)."""
-    return frame.groupby(columns, sort=False, dropna=False).ngroup().to_numpy()
-
-
 @rule("polyprotic_order", "warning", "successive pKa steps of one acid must increase (pKa1 < pKa2 < ...)")
 def _step_order(m: pd.DataFrame, config: dict) -> RuleResult:
-    has_step = m["step"].notna() & m["qualifier"].isna()
-    sub = m[has_step]
-    key = _condition_key(sub)
-    key["source_id"] = sub["source_id"]
-    gid = _group_ids(key, ["compound_id", "source_id", "t", "i", "ctype"])
+    has_step = (m["step"].notna() & m["qualifier"].isna()).to_numpy()
+    sub = _rows(m, has_step, ["compound_id", "source_id", "temperature_k", "ionic_strength_molal", "constant_type", "step", "pka"])
+    gid = _key_codes(_codes(sub, "compound_id"), _codes(sub, "source_id"), _rounded(sub["temperature_k"], 1),
+                     _rounded(sub["ionic_strength_molal"], 3), _codes(sub, "constant_type"))
     step = sub["step"].to_numpy(dtype="int64")
     pka = sub["pka"].to_numpy(dtype=float)
     order = np.lexsort((step, gid))  # by group, then step
@@ -261,41 +336,67 @@ def pk_rounding(text: pd.Series, quantity: pd.Series) -> pd.Series:
 def _ka_pka_row(m: pd.DataFrame, config: dict) -> RuleResult:
     if "pka_alt" not in m or m["pka_alt"].isna().all():
         return _result(m, pd.Series(False, index=m.index), "")
+    r = m[m["pka_alt"].notna()]  # rounding and messages only where the row gives the constant twice
     tolerance = (
-        pk_rounding(m["value_reported"], m["quantity_reported"])
-        + pk_rounding(m["value_alt_reported"].fillna(""), m["quantity_alt_reported"].fillna(""))
+        pk_rounding(r["value_reported"], r["quantity_reported"])
+        + pk_rounding(r["value_alt_reported"].fillna(""), r["quantity_alt_reported"].fillna(""))
         + config.get("extra_tolerance", 1e-9)
     )
-    diff = (m["pka"] - m["pka_alt"]).abs()
-    bad = m["pka_alt"].notna() & (diff > tolerance)
-    msg = (m["quantity_alt_reported"].astype(str) + " '" + m["value_alt_reported"].astype(str)
-           + "' gives pKa " + _fmt(m["pka_alt"]) + " but the row's " + m["quantity_reported"].astype(str)
-           + " '" + m["value_reported"].astype(str) + "' gives " + _fmt(m["pka"]) + "; they differ by "
+    diff = (r["pka"] - r["pka_alt"]).abs()
+    bad = diff > tolerance
+    r, diff, tolerance = r[bad], diff[bad], tolerance[bad]
+    msg = (r["quantity_alt_reported"].astype(str) + " '" + r["value_alt_reported"].astype(str)
+           + "' gives pKa " + _fmt(r["pka_alt"]) + " but the row's " + r["quantity_reported"].astype(str)
+           + " '" + r["value_reported"].astype(str) + "' gives " + _fmt(r["pka"]) + "; they differ by "
            + _fmt(diff) + ", more than rounding allows (" + _fmt(tolerance, 4) + ")")
-    return _result(m, bad, msg)
+    return RuleResult(r["value_id"], msg.astype(str))
 
 
 @rule("ka_kb_kw", "warning", "a pKa and a pKb of one conjugate pair at the same conditions must sum to pKw")
 def _ka_kb_kw(m: pd.DataFrame, config: dict) -> RuleResult:
-    key = _condition_key(m)
-    key["step"] = m["step"].fillna(0)
-    from_base = m["quantity_reported"].isin(["pKb", "Kb"])
-    frame = pd.concat([key, m[["pka", "pka_uncertainty", "pkw_used"]]], axis=1)
-    frame = frame[m["qualifier"].isna()]
-    group = ["compound_id", "t", "i", "ctype", "step"]
-    direct = frame[~from_base[frame.index]].groupby(group).agg(
-        pka_direct=("pka", "median"), u_direct=("pka_uncertainty", "max")
-    )
-    via_base = frame[from_base[frame.index]].join(direct, on=group, how="inner")
-    u = np.sqrt(via_base["pka_uncertainty"].fillna(0.02) ** 2 + via_base["u_direct"].fillna(0.02) ** 2)
+    """Each pKa converted from a pKb or Kb (through pKw) against the median of the pKa values given
+    directly for the same compound, step (none = 0), temperature (0.1 K), ionic strength
+    (0.001 mol/kg) and constant type; bounds are left out."""
+    unbounded = m["qualifier"].isna().to_numpy()
+    from_base = m["quantity_reported"].isin(["pKb", "Kb"]).to_numpy()
+    # only the compounds with a value from a base have pairs to check
+    compound = _codes(m, "compound_id")
+    involved = np.zeros(compound.max(initial=-1) + 1, dtype=bool)
+    involved[compound[unbounded & from_base]] = True
+    used = unbounded & involved[compound]
+    sub = _rows(m, used, ["compound_id", "temperature_k", "ionic_strength_molal", "constant_type", "step", "pka",
+                          "pka_uncertainty", "pkw_used"])
+    from_base = from_base[used]
+    group = _key_codes(_codes(sub, "compound_id"), _rounded(sub["temperature_k"], 1),
+                       _rounded(sub["ionic_strength_molal"], 3), _codes(sub, "constant_type"),
+                       sub["step"].fillna(0).astype("int64"))
+    # only the groups that hold a value from a base need the median of the direct values
+    wanted = np.zeros(group.max(initial=-1) + 1, dtype=bool)
+    wanted[group[from_base]] = True
+    direct_rows = ~from_base & wanted[group]
+    direct = pd.DataFrame({"group": group[direct_rows], "pka": sub["pka"].to_numpy()[direct_rows],
+                           "u": sub["pka_uncertainty"].to_numpy()[direct_rows]}).groupby("group").agg(
+        pka_direct=("pka", "median"), u_direct=("u", "max"))
+    pka_direct = np.full(len(wanted), np.nan)
+    u_direct = np.full(len(wanted), np.nan)
+    has_direct = np.zeros(len(wanted), dtype=bool)
+    pka_direct[direct.index], u_direct[direct.index], has_direct[direct.index] = (
+        direct["pka_direct"], direct["u_direct"], True)
+    via_base = sub[from_base & has_direct[group]]
+    g = group[from_base & has_direct[group]]
+    pka, pkw_used = via_base["pka"].to_numpy(), via_base["pkw_used"].to_numpy()
+    u = np.sqrt(np.nan_to_num(via_base["pka_uncertainty"].to_numpy(), nan=0.02) ** 2
+                + np.nan_to_num(u_direct[g], nan=0.02) ** 2)
     tolerance = np.maximum(config.get("min_tolerance", 0.1), 3 * u)
-    diff = (via_base["pka"] - via_base["pka_direct"]).abs()
+    diff = np.abs(pka - pka_direct[g])
     bad = diff > tolerance
-    pkb = via_base["pkw_used"] - via_base["pka"]
-    msg = ("pKb " + _fmt(pkb) + " + pKa " + _fmt(via_base["pka_direct"]) + " = " + _fmt(pkb + via_base["pka_direct"])
-           + " but pKw = " + _fmt(via_base["pkw_used"]) + " at these conditions (IAPWS R11-24); "
-           "off by " + _fmt(diff) + ", tolerance " + _fmt(tolerance))
-    return _result(m.loc[via_base.index], bad, msg)
+    rows = via_base.index[bad]
+    pkb = pkw_used[bad] - pka[bad]
+    reference = pka_direct[g][bad]
+    msg = ("pKb " + _fmt(pkb) + " + pKa " + _fmt(reference) + " = " + _fmt(pkb + reference)
+           + " but pKw = " + _fmt(pkw_used[bad]) + " at these conditions (IAPWS R11-24); "
+           "off by " + _fmt(diff[bad]) + ", tolerance " + _fmt(tolerance[bad]))
+    return RuleResult(m.loc[rows, "value_id"], pd.Series(msg.to_numpy(), index=rows).astype(str))
 
 
 #: Uncertainty [pK units] assumed for a value reported without one, where a rule must weigh it
@@ -337,6 +438,8 @@ def reference_key(reference: pd.Series) -> pd.Series:
 
 def _comparable(m: pd.DataFrame) -> pd.Series:
     """Values a group rule may compare: aqueous, not a bound, inside the physical bounds."""
+    if _COMPARABLE in m.columns:
+        return m[_COMPARABLE]
     return (m["solvent"] == "water") & m["qualifier"].isna() & m["pka"].between(PKA_PHYSICAL_LOW, PKA_PHYSICAL_HIGH)
 
 
@@ -346,6 +449,51 @@ def _empty(m: pd.DataFrame) -> RuleResult:
 
 def _u_filled(m: pd.DataFrame, config: dict) -> pd.Series:
     return m["pka_uncertainty"].fillna(config.get("default_uncertainty", DEFAULT_UNCERTAINTY))
+
+
+def _distinct_per_group(group: np.ndarray, values: np.ndarray) -> np.ndarray:
+    """Number of distinct ``values`` in each group (indexed by the dense group id)."""
+    pairs = _key_codes(group, values)
+    group_of_pair = np.zeros(pairs.max(initial=-1) + 1, dtype=np.int64)
+    group_of_pair[pairs] = group
+    return np.bincount(group_of_pair, minlength=group.max(initial=-1) + 1)
+
+
+def _first_per_group(group: np.ndarray, *keys: np.ndarray) -> np.ndarray:
+    """Position of the first row of each group after sorting by ``keys`` (the first key decides
+    first); ties keep the original order. Groups come out in ascending id order."""
+    order = np.lexsort((np.arange(len(group)), *reversed(keys), group))
+    head = np.r_[True, group[order][1:] != group[order][:-1]]
+    return order[head]
+
+
+def _leave_one_out_fits(
+    series: np.ndarray, t: np.ndarray, pka: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """For each node, the van 't Hoff fit through the *other* nodes of its series, with the node's
+    temperature as reference temperature: (prediction, u²(prediction) + s², number of other nodes).
+
+    ``series`` must be sorted (the nodes of a series contiguous). ΔCp° is fitted when five or more
+    other nodes remain (:func:`pipeline.physchem.fit_van_t_hoff_groups`, one pass for all fits).
+    """
+    starts, sizes = np.unique(series, return_index=True, return_counts=True)[1:]
+    node = np.arange(len(series))
+    size = np.repeat(sizes, sizes)  # per node: nodes in its series
+    first = np.repeat(starts, sizes)  # per node: position of its series' first node
+    # every (left-out node, other node) pair of a series: size² pairs per series, self-pairs dropped
+    left_out = np.repeat(node, size)
+    other = np.repeat(first, size) + np.arange(len(left_out)) - np.repeat(np.cumsum(size) - size, size)
+    keep = other != left_out
+    left_out, other = left_out[keep], other[keep]
+    n_other = size - 1
+    fit = physchem.fit_van_t_hoff_groups(left_out, t[other], pka[other], t, n_other >= 5)
+    spread = fit.covariance[:, 0, 0] + fit.chi_squared / fit.dof
+    # other nodes of one pKa: fit_van_t_hoff (curve_fit) reports an infinite covariance there
+    # (ΔH° ~ 0 leaves its finite-difference Jacobian column zero), so such a node is not judged
+    bounds = np.r_[0, np.cumsum(n_other)[:-1]]
+    flat = np.maximum.reduceat(pka[other], bounds) == np.minimum.reduceat(pka[other], bounds)
+    spread[flat] = np.inf
+    return fit.pka_ref, spread, n_other
 
 
 @rule(
@@ -362,10 +510,13 @@ def _van_t_hoff(m: pd.DataFrame, config: dict) -> RuleResult:
     273.15-373.15 K. Each temperature is a node: the median of its values (so one wrong value
     among several at one temperature does not move the curve; that case is
     ``source_disagreement``'s). For each node the integrated van 't Hoff equation
-    (:func:`pipeline.physchem.fit_van_t_hoff`, ref. [3]) is fitted to the *other* nodes, with
+    (least squares as :func:`pipeline.physchem.fit_van_t_hoff`, ref. [3]; all fits of a round in one
+    pass of :func:`pipeline.physchem.fit_van_t_hoff_groups`) is fitted to the *other* nodes, with
     the left-out temperature as reference temperature, so the fitted pKa(θ) is the prediction
-    and its variance the covariance's first element. ΔCp° is fitted when five or more nodes
-    remain, else ΔH° is taken as constant (four points do not pin a curvature). The normalized
+    and its variance the covariance's first element. A node whose other nodes all have one pKa is
+    not judged (``fit_van_t_hoff`` finds no covariance for such a flat curve). ΔCp° is fitted when
+    five or more nodes remain, else ΔH° is taken as constant (four points do not pin a curvature).
+    The normalized
     residual is (observed − predicted) / √(u² + u²(predicted) + s²), with u the value's
     uncertainty (``default_uncertainty`` when missing) and s the residual standard deviation of
     the fit. A node whose |normalized residual| exceeds ``max_normalized_residual`` (default 3)
@@ -377,64 +528,58 @@ def _van_t_hoff(m: pd.DataFrame, config: dict) -> RuleResult:
     """
     limit = config.get("max_normalized_residual", MAX_NORMALIZED_RESIDUAL)
     min_t = config.get("min_temperatures", 4)
-    ok = _comparable(m) & m["temperature_k"].between(physchem.T_MIN_K, physchem.T_MAX_K)
-    f = pd.DataFrame(
-        {
-            "compound_id": m["compound_id"],
-            "step": m["step"].fillna(0).astype("int64"),
-            "i": m["ionic_strength_molal"].round(3),
-            "ctype": m["constant_type"],
-            "t": m["temperature_k"].round(1),
-            "pka": m["pka"],
-            "u": _u_filled(m, config),
-        },
-        index=m.index,
-    )[ok]
-    series = ["compound_id", "step", "i", "ctype"]
-    nodes = f.groupby(series + ["t"], sort=True).agg(pka=("pka", "median"), u=("u", "median")).reset_index()
-    nodes = nodes[nodes.groupby(series)["t"].transform("size") >= min_t].reset_index(drop=True)
-    if nodes.empty:
+    ok = (_comparable(m) & m["temperature_k"].between(physchem.T_MIN_K, physchem.T_MAX_K)).to_numpy(copy=True)
+    # a series needs min_t temperatures, and so does its compound: a cheap first cut
+    compound = _codes(m, "compound_id")[ok]
+    ok[ok] = _distinct_per_group(compound, _rounded(m["temperature_k"].to_numpy()[ok], 1))[compound] >= min_t
+    sub = _rows(m, ok, ["compound_id", "step", "ionic_strength_molal", "constant_type", "temperature_k", "pka",
+                        "pka_uncertainty"])
+    series_of_row = _key_codes(_codes(sub, "compound_id"), sub["step"].fillna(0).astype("int64"),
+                               _rounded(sub["ionic_strength_molal"], 3), _codes(sub, "constant_type"))
+    t_of_row = sub["temperature_k"].round(1).to_numpy()
+    # series with >= min_t temperatures; only their rows form nodes
+    in_series = _distinct_per_group(series_of_row, _rounded(t_of_row, 1))[series_of_row] >= min_t
+    if not in_series.any():
         return _empty(m)
-    t_all, p_all, u_all = (nodes[c].to_numpy(dtype=float) for c in ("t", "pka", "u"))
+    rows = pd.DataFrame({"series": series_of_row[in_series], "t": t_of_row[in_series],
+                         "pka": sub["pka"].to_numpy()[in_series],
+                         "u": _u_filled(sub, config).to_numpy()[in_series]},
+                        index=sub.index[in_series])
+    rows["node"] = _key_codes(rows["series"], _rounded(rows["t"], 1))
+    # a node is the median of the values at one temperature; nodes sorted by series, then temperature
+    nodes = rows.groupby("node").agg(series=("series", "first"), t=("t", "first"),
+                                     pka=("pka", "median"), u=("u", "median"))
+    nodes = nodes.sort_values(["series", "t"])
+    node_position = np.empty(len(nodes), dtype=np.int64)
+    node_position[nodes.index.to_numpy()] = np.arange(len(nodes))
+    rows["node"] = node_position[rows["node"].to_numpy()]
+    series, t_all, p_all, u_all = (nodes[c].to_numpy() for c in ("series", "t", "pka", "u"))
     predicted = np.full(len(nodes), np.nan)
     spread = np.full(len(nodes), np.nan)  # u²(predicted) + s² [pK units²]
-    n_fit = np.zeros(len(nodes), dtype=int)
+    n_fit = np.zeros(len(nodes), dtype=np.int64)
     z_node = np.zeros(len(nodes))
     set_aside = np.zeros(len(nodes), dtype=bool)
-
-    def leave_one_out(active: np.ndarray) -> None:
-        for k in active:
-            others = active[active != k]
-            with_cp = len(others) >= 5
-            fit = physchem.fit_van_t_hoff(t_all[others], p_all[others], with_heat_capacity=with_cp,
-                                          t_ref_k=float(t_all[k]))
-            dof = len(others) - (3 if with_cp else 2)
-            predicted[k] = fit.pka_ref
-            spread[k] = float(fit.covariance[0, 0]) + float(np.sum(fit.residuals**2)) / dof
-            n_fit[k] = len(others)
+    # rounds over all series at once: test every active node against the others; in each series whose
+    # worst node is beyond the limit, set that node aside and test the rest again in the next round
+    active = np.arange(len(nodes))
+    while len(active):
+        predicted[active], spread[active], n_fit[active] = _leave_one_out_fits(
+            series[active], t_all[active], p_all[active])
         z_node[active] = (p_all[active] - predicted[active]) / np.sqrt(u_all[active] ** 2 + spread[active])
-
-    # one loop over the few series with >= min_t temperatures, one fit per left-out node; the worst
-    # node beyond the limit is set aside and the rest re-tested, so one outlier cannot make a good
-    # end point look bad through a curve bent towards it
-    for idx in nodes.groupby(series, sort=False).indices.values():
-        active = np.asarray(idx)
-        while len(active) >= min_t:
-            leave_one_out(active)
-            worst = active[np.argmax(np.abs(z_node[active]))]
-            if abs(z_node[worst]) <= limit:
-                break
-            set_aside[worst] = True
-            active = active[active != worst]
-    nodes["predicted"] = predicted
-    nodes["spread"] = spread
-    nodes["n_fit"] = n_fit
-    nodes["z_node"] = z_node
-    nodes["set_aside"] = set_aside
-    points = f.reset_index().merge(nodes.drop(columns=["pka", "u"]), on=series + ["t"], how="inner").set_index("index")
-    points["z"] = (points["pka"] - points["predicted"]) / np.sqrt(points["u"] ** 2 + points["spread"])
-    bad = points["set_aside"] & (points["z"].abs() > limit)
-    bad_rows = points[bad]
+        z = np.abs(z_node[active])
+        # the worst node of each series as np.argmax takes it: NaN first, then the largest, the first of ties
+        worst = active[_first_per_group(series[active], ~np.isnan(z), -np.nan_to_num(z, nan=0.0))]
+        beyond = worst[~(np.abs(z_node[worst]) <= limit)]
+        set_aside[beyond] = True
+        still = np.isin(series[active], series[beyond]) & ~set_aside[active]
+        active = active[still]
+        active = active[np.bincount(series[active], minlength=series.max() + 1)[series[active]] >= min_t]
+    flagged_node = set_aside[rows["node"].to_numpy()]
+    points = rows[flagged_node]
+    node = points["node"].to_numpy()
+    points = points.assign(predicted=predicted[node], n_fit=n_fit[node])
+    points["z"] = (points["pka"] - points["predicted"]) / np.sqrt(points["u"] ** 2 + spread[node])
+    bad_rows = points[points["z"].abs() > limit].sort_index()
     message = (
         "pKa " + _fmt(bad_rows["pka"]) + " at " + _fmt(m.loc[bad_rows.index, "temperature_k"], 2) + " K is "
         + (bad_rows["pka"] - bad_rows["predicted"]).map("{:+.3f}".format)
@@ -477,25 +622,31 @@ def _ionic_strength(m: pd.DataFrame, config: dict) -> RuleResult:
     model = physchem.ACTIVITY_MODELS[model_key]
     tolerance = config.get("tolerance", 0.05)
     t_lo, t_hi = model.temperature_range_k
-    f = pd.DataFrame(
-        {
-            "compound_id": m["compound_id"],
-            "step": m["step"].fillna(0).astype("int64"),
-            "t": m["temperature_k"].round(1),
-            "ctype": m["constant_type"],
-            "pka": m["pka"],
-            "u": _u_filled(m, config),
-        },
-        index=m.index,
-    )[_comparable(m) & m["temperature_k"].between(t_lo, t_hi)]
-    key = ["compound_id", "step", "t"]
-    thermo = f[f["ctype"] == "thermodynamic"].groupby(key).agg(ref=("pka", "median"), u_ref=("u", "median"))
+    in_range = _comparable(m) & m["temperature_k"].between(t_lo, t_hi)
     i = m["ionic_strength_molal"]
-    candidate = (f["ctype"] != "thermodynamic") & (i[f.index] > 0) & (i[f.index] <= model.max_ionic_strength)
-    candidate &= m["charge"][f.index].notna()
-    rows = f[candidate].join(thermo, on=key, how="inner")
-    if rows.empty:
+    thermodynamic = m["constant_type"] == "thermodynamic"
+    candidate = (in_range & ~thermodynamic & (i > 0) & (i <= model.max_ionic_strength)
+                 & m["charge"].notna()).to_numpy()
+    if not candidate.any():
         return _empty(m)
+    reference = (in_range & thermodynamic).to_numpy()
+    f = _rows(m, candidate | reference, ["compound_id", "step", "temperature_k", "pka", "pka_uncertainty"])
+    key = _key_codes(_codes(f, "compound_id"), f["step"].fillna(0).astype("int64"), _rounded(f["temperature_k"], 1))
+    is_candidate, is_reference = candidate[candidate | reference], reference[candidate | reference]
+    u = _u_filled(f, config).to_numpy()
+    # the thermodynamic medians of the keys that have a candidate row
+    wanted = np.zeros(key.max() + 1, dtype=bool)
+    wanted[key[is_candidate]] = True
+    ref_rows = is_reference & wanted[key]
+    thermo = pd.DataFrame({"key": key[ref_rows], "pka": f["pka"].to_numpy()[ref_rows], "u": u[ref_rows]}).groupby(
+        "key").agg(ref=("pka", "median"), u_ref=("u", "median"))
+    with_ref = is_candidate & np.isin(key, thermo.index.to_numpy())
+    if not with_ref.any():
+        return _empty(m)
+    index = f.index[with_ref]
+    rows = pd.DataFrame({"ctype": m.loc[index, "constant_type"], "t": f.loc[index, "temperature_k"].round(1),
+                         "pka": f.loc[index, "pka"], "u": u[with_ref]}, index=index)
+    rows = rows.join(thermo.reindex(key[with_ref]).set_axis(index))
     expected = pd.Series(np.nan, index=rows.index)
     for ctype in rows["ctype"].unique():  # at most two: concentration, mixed
         sel = rows["ctype"] == ctype
@@ -517,7 +668,6 @@ def _ionic_strength(m: pd.DataFrame, config: dict) -> RuleResult:
         + _fmt(diff[r.index].abs()) + ", tolerance " + _fmt(limit[r.index])
     )
     return RuleResult(m.loc[r.index, "value_id"], message.astype(str))
-
 
 @rule(
     "source_disagreement",
@@ -544,56 +694,61 @@ def _source_disagreement(m: pd.DataFrame, config: dict) -> RuleResult:
     """
     z_limit = config.get("max_normalized_residual", MAX_NORMALIZED_RESIDUAL)
     birge_limit = config.get("birge_limit", BIRGE_LIMIT)
-    f = pd.DataFrame(
-        {
-            "compound_id": m["compound_id"],
-            "step": m["step"].fillna(0).astype("int64"),
-            "t": m["temperature_k"].round(2),
-            "i": m["ionic_strength_molal"].round(3),
-            "ctype": m["constant_type"],
-            "pka": m["pka"],
-            "u": _u_filled(m, config).clip(lower=1e-6),
-            "ref": reference_key(m["reference"]),
-            "p3": m["pka"].round(3),
-        },
-        index=m.index,
-    )[_comparable(m)]
-    group = ["compound_id", "step", "t", "i", "ctype"]
-    f["gid"] = _group_ids(f, group)
-    copies = f["ref"].notna() & f.duplicated(["gid", "ref", "p3"])
-    f = f[~copies]
-    size = np.bincount(f["gid"].to_numpy())
-    f = f[size[f["gid"].to_numpy()] >= 2]
-    if f.empty:
+    f = _rows(m, _comparable(m), ["compound_id", "step", "temperature_k", "ionic_strength_molal", "constant_type",
+                                  "pka", "pka_uncertainty", "reference"])
+    group = _key_codes(_codes(f, "compound_id"), f["step"].fillna(0).astype("int64"), _rounded(f["temperature_k"], 2),
+                       _rounded(f["ionic_strength_molal"], 3), _codes(f, "constant_type"))
+    # copies: a repeat of (group, primary reference, pKa to 0.001); references reduced on distinct texts
+    text_codes, texts = pd.factorize(f["reference"])
+    reduced_codes = pd.factorize(reference_key(pd.Series(texts, dtype=object)))[0]
+    reference = np.full(len(f), -1)  # -1: no reference
+    reference[text_codes >= 0] = reduced_codes[text_codes[text_codes >= 0]]
+    x_all = f["pka"].to_numpy()
+    cited = reference >= 0
+    copies = np.zeros(len(f), dtype=bool)
+    copies[cited] = pd.Series(_key_codes(group[cited], reference[cited], _rounded(x_all[cited], 3))).duplicated()
+    size = np.bincount(group[~copies]) if len(group) else np.zeros(0, dtype=np.int64)
+    member = ~copies & (size[group] >= 2 if len(group) else np.zeros(0, dtype=bool))
+    if not member.any():
         return _empty(m)
-    gid = pd.factorize(f["gid"])[0]  # dense again after the filter
+    gid = pd.factorize(group[member])[0]  # dense again after the filter
+    x = x_all[member]
+    u = _u_filled(f, config).clip(lower=1e-6).to_numpy()[member]
 
-    def per_group_sum(x: pd.Series | np.ndarray) -> pd.Series:
-        return pd.Series(np.bincount(gid, weights=np.asarray(x, dtype=float))[gid], index=f.index)
+    def per_group_sum(values: np.ndarray) -> np.ndarray:
+        return np.bincount(gid, weights=np.asarray(values, dtype=float))[gid]
 
-    x, u = f["pka"], f["u"]
-    n = per_group_sum(np.ones(len(f)))
+    n = per_group_sum(np.ones(len(x)))
     w = 1.0 / u**2
     wmean = per_group_sum(w * x) / per_group_sum(w)
     birge = np.sqrt(per_group_sum(w * (x - wmean) ** 2) / (n - 1))
-    grouped = f.groupby(gid, sort=False)
     pair = n == 2
-    x_ref = np.where(pair, per_group_sum(x) - x, grouped["pka"].transform("median"))
-    u_ref = np.where(pair, np.sqrt((per_group_sum(u**2) - u**2).clip(lower=0)),
-                     MEDIAN_SE_FACTOR * grouped["u"].transform("median") / np.sqrt(n))
+    # medians are needed for groups of three or more only: one groupby for both columns
+    medians = pd.DataFrame({"x": x[~pair], "u": u[~pair]}).groupby(gid[~pair]).median()
+    median_row = np.zeros(gid.max() + 1, dtype=np.int64)
+    median_row[medians.index.to_numpy()] = np.arange(len(medians))
+    x_median, u_median = np.full(len(x), np.nan), np.full(len(x), np.nan)
+    x_median[~pair] = medians["x"].to_numpy()[median_row[gid[~pair]]]
+    u_median[~pair] = medians["u"].to_numpy()[median_row[gid[~pair]]]
+    x_ref = np.where(pair, per_group_sum(x) - x, x_median)
+    u_ref = np.where(pair, np.sqrt((per_group_sum(u**2) - u**2).clip(min=0)),
+                     MEDIAN_SE_FACTOR * u_median / np.sqrt(n))
     z = (x - x_ref) / np.sqrt(u**2 + u_ref**2)
-    bad = (birge > birge_limit) & (z.abs() > z_limit)
-    r = f[bad]
+    bad = (birge > birge_limit) & (np.abs(z) > z_limit)
+    rows = f.index[member][bad]
+    assumed = m.loc[rows, "pka_uncertainty"].isna().to_numpy()
+    compared_with = np.where(pair[bad], "other value ",
+                             _as_text(n[bad].astype(int), "median of the ", " independent values ").to_numpy())
+    # few pieces, each formatted on distinct values: every "+" walks all the failing rows again
     message = (
-        "pKa " + _fmt(r["pka"]) + " ± " + _fmt(r["u"])
-        + np.where(m.loc[r.index, "pka_uncertainty"].isna(), " (uncertainty assumed)", "")
-        + " disagrees with the " + np.where(
-            pair[bad], "other value ", "median of the " + n[bad].astype(int).astype(str) + " independent values "
-        ) + pd.Series(x_ref, index=f.index)[bad].round(3).astype(str) + " at the same conditions: normalized residual "
-        + z[bad].round(1).astype(str) + f" (limit {z_limit:g}), Birge ratio " + birge[bad].round(2).astype(str)
-        + f" (limit {birge_limit:g})"
+        _fmt(x[bad], before="pKa ").to_numpy() + _fmt(u[bad], before=" ± ").to_numpy()
+        + np.where(assumed, " (uncertainty assumed) disagrees with the ", " disagrees with the ").astype(object)
+        + compared_with.astype(object)
+        + _fmt(x_ref[bad], after=" at the same conditions: normalized residual ").to_numpy()
+        + _fmt(z[bad], 1, after=f" (limit {z_limit:g}), Birge ratio ").to_numpy()
+        + _fmt(birge[bad], 2, after=f" (limit {birge_limit:g})").to_numpy()
     )
-    return RuleResult(m.loc[r.index, "value_id"], message.astype(str))
+    return RuleResult(m.loc[rows, "value_id"], pd.Series(message, index=rows, dtype=object).astype(str))
 
 
 def run_rules(measurements: pd.DataFrame, config: dict | None = None) -> pd.DataFrame:
@@ -603,25 +758,52 @@ def run_rules(measurements: pd.DataFrame, config: dict | None = None) -> pd.Data
     other keys set its tolerances.
     """
     config = config or {}
+    m = with_rule_keys(measurements)
     frames: list[pd.DataFrame] = []
     for name, r in RULES.items():
         settings = config.get(name, {})
         if not settings.get("enabled", True):
             continue
-        result = r.function(measurements, settings)
+        result = r.function(m, settings)
         frames.append(pd.DataFrame({"rule": name, "severity": settings.get("severity", r.severity),
                                     "value_id": result.value_id, "message": result.message}))
-    return attach_locations(pd.concat(frames, ignore_index=True), measurements)
+    findings = pd.concat(frames)
+    # a rule returns its value ids under the measurement rows' labels: locate them by position
+    # (looking a million value ids up again would cost more than most rules), checked below
+    positions = (measurements.index.get_indexer(findings.index) if measurements.index.is_unique
+                 else np.full(len(findings), -1))
+    return attach_locations(findings.reset_index(drop=True), measurements, positions)
 
 
-def attach_locations(findings: pd.DataFrame, measurements: pd.DataFrame) -> pd.DataFrame:
-    """Add compound, source and row of each finding's value; order columns as the schema."""
-    where = measurements.set_index("value_id")[["compound_id", "source_id", "source_row"]]
-    located = findings.drop(columns=[c for c in where.columns if c in findings.columns]).join(
-        where, on="value_id"
-    )
+#: Columns of a finding that locate its value.
+_LOCATION_COLUMNS = ["compound_id", "source_id", "source_row"]
+
+
+def attach_locations(
+    findings: pd.DataFrame, measurements: pd.DataFrame, positions: np.ndarray | None = None
+) -> pd.DataFrame:
+    """Add compound, source and row of each finding's value; order columns as the schema.
+
+    ``positions`` (optional) are the measurement rows of the findings' value ids, as far as known;
+    they are used where the value id there matches, the rest is looked up by value id.
+    """
+    value_ids = findings["value_id"].to_numpy(dtype=object)
+    measured_ids = measurements["value_id"].to_numpy(dtype=object)
+    if positions is None:
+        positions = np.full(len(findings), -1)
+    positions = np.asarray(positions, dtype=np.int64)
+    known = positions >= 0
+    known[known] = measured_ids[positions[known]] == value_ids[known]
+    if not known.all():
+        if not measurements["value_id"].is_unique:
+            raise ValueError("measurements must have unique value ids to locate findings")
+        positions = np.where(known, positions, pd.Index(measured_ids).get_indexer(value_ids))
+    located = findings.drop(columns=[c for c in _LOCATION_COLUMNS if c in findings.columns])
+    for column in _LOCATION_COLUMNS:
+        values = measurements[column].array
+        located[column] = values.take(positions, allow_fill=True) if len(values) else pd.array(
+            [None] * len(positions), dtype=values.dtype)
     if "compound_id" in findings.columns:
         located["compound_id"] = located["compound_id"].fillna(findings["compound_id"])
     located = located.reindex(columns=list(FINDINGS.columns))
     return FINDINGS.validate(located.sort_values(["rule", "value_id"], kind="stable").reset_index(drop=True))
-

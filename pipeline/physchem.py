@@ -59,11 +59,13 @@ __all__ = [
     "PhysChemRangeError",
     "SitCoefficient",
     "VantHoffFit",
+    "VantHoffGroupFits",
     "convert_constant_type",
     "debye_huckel_a",
     "debye_huckel_b",
     "dpka_dt",
     "fit_van_t_hoff",
+    "fit_van_t_hoff_groups",
     "ka_to_pka",
     "kb_to_pka",
     "log_activity_coefficient",
@@ -1730,4 +1732,172 @@ def fit_van_t_hoff(
         covariance=np.asarray(pcov, dtype=np.float64),
         residuals=np.asarray(resid, dtype=np.float64),
         normalized_residuals=np.asarray(norm, dtype=np.float64),
+    )
+
+
+@dataclass(frozen=True)
+class VantHoffGroupFits:
+    """Result of :func:`fit_van_t_hoff_groups`: one entry per group.
+
+    Attributes
+    ----------
+    pka_ref : numpy.ndarray
+        Fitted pKa at each group's reference temperature [-].
+    delta_h : numpy.ndarray
+        ΔH° at the reference temperature [J/mol].
+    delta_cp : numpy.ndarray
+        ΔCp° [J/(K mol)]; 0.0 where not fitted.
+    t_ref_k : numpy.ndarray
+        Reference temperatures [K].
+    with_heat_capacity : numpy.ndarray
+        Whether ΔCp° was a fitted parameter (bool).
+    covariance : numpy.ndarray
+        Covariance of (pka_ref, delta_h, delta_cp), shape (groups, 3, 3); the ΔCp° row and
+        column are 0 where ΔCp° is not fitted.
+    chi_squared : numpy.ndarray
+        Sum of (weighted) squared residuals [-].
+    dof : numpy.ndarray
+        Degrees of freedom: points minus fitted parameters (int).
+    """
+
+    pka_ref: FloatArray
+    delta_h: FloatArray
+    delta_cp: FloatArray
+    t_ref_k: FloatArray
+    with_heat_capacity: NDArray[np.bool_]
+    covariance: FloatArray
+    chi_squared: FloatArray
+    dof: NDArray[np.int64]
+
+
+def fit_van_t_hoff_groups(
+    group: ArrayLike,
+    t_k: ArrayLike,
+    pka: ArrayLike,
+    t_ref_k: ArrayLike,
+    with_heat_capacity: ArrayLike,
+    weights: ArrayLike | None = None,
+) -> VantHoffGroupFits:
+    """Fit many pKa(T) data sets at once with the integrated van 't Hoff equation.
+
+    The same least-squares fit as :func:`fit_van_t_hoff`, for every group of points in one pass:
+    the model of :func:`van_t_hoff` is linear in pKa(θ), ΔH° and ΔCp°, so each group's fit has
+    the closed form of linear regression (normal equations on group-centred terms, ref. [3]),
+    evaluated from per-group sums with ``numpy.bincount``, no loop over groups.
+
+    Parameters
+    ----------
+    group : array_like of int
+        Group of each point, 0 to G - 1 (every group must have points).
+    t_k : array_like
+        Temperatures [K], 273.15-373.15.
+    pka : array_like
+        pKa values [-].
+    t_ref_k : array_like
+        Reference temperature θ of each group [K], shape (G,).
+    with_heat_capacity : array_like of bool
+        Whether to fit ΔCp° in each group, shape (G,) (needs >= 4 points there, else >= 3).
+    weights : array_like, optional
+        Statistical weights 1/u² [-] of the points. With weights the covariance is absolute;
+        without, it is scaled by each group's residual variance (as :func:`fit_van_t_hoff`).
+
+    Returns
+    -------
+    VantHoffGroupFits
+
+    Raises
+    ------
+    ValueError
+        Too few points in a group, mismatched lengths, NaN or non-positive weights.
+
+    References
+    ----------
+    .. [1] Clarke, E. C. W.; Glew, D. N. Trans. Faraday Soc. 1966, 62, 539-547.
+       doi:10.1039/TF9666200539
+    .. [2] Goldberg, R. N.; Kishore, N.; Lennen, R. M. J. Phys. Chem. Ref.
+       Data 2002, 31, 231-370. doi:10.1063/1.1416902
+    .. [3] Draper, N. R.; Smith, H. *Applied Regression Analysis*, 3rd ed.; Wiley: New York,
+       1998; ch. 5 (least squares in matrix form, centred regressors).
+
+    Examples
+    --------
+    >>> t = np.array([278.15, 288.15, 298.15, 308.15, 318.15])
+    >>> p = van_t_hoff(8.072, 298.15, t, 47450.0).value
+    >>> fits = fit_van_t_hoff_groups(np.zeros(5, dtype=int), t, p, [298.15], [False])
+    >>> round(float(fits.delta_h[0])), round(float(fits.pka_ref[0]), 3)
+    (47450, 8.072)
+    """
+    g = np.asarray(group, dtype=np.int64)
+    t = _temperature(t_k)
+    y = _as_float(pka)
+    theta = _temperature(t_ref_k)
+    cp = np.asarray(with_heat_capacity, dtype=bool)
+    if t.ndim != 1 or t.shape != y.shape or g.shape != t.shape:
+        raise ValueError(
+            "group, t_k and pka must be 1-D arrays of equal length; got shapes "
+            f"{g.shape}, {t.shape} and {y.shape}"
+        )
+    if theta.ndim != 1 or cp.shape != theta.shape:
+        raise ValueError(
+            f"t_ref_k and with_heat_capacity need one entry per group; got shapes {theta.shape} and {cp.shape}"
+        )
+    if np.isnan(t).any() or np.isnan(y).any():
+        raise ValueError("t_k and pka must not contain NaN; drop missing points before fitting")
+    n_groups = theta.size
+    if g.size and (g.min() < 0 or g.max() >= n_groups):
+        raise ValueError(f"group ids must lie in 0..{n_groups - 1}; got {g.min()}..{g.max()}")
+    n_points = np.bincount(g, minlength=n_groups)
+    n_par = np.where(cp, 3, 2)
+    short = n_points <= n_par
+    if short.any():
+        k = int(np.argmax(short))
+        raise ValueError(
+            f"{n_points[k]} points given in group {k}; fitting {n_par[k]} parameters needs at least {n_par[k] + 1}"
+        )
+    if weights is None:
+        w = np.ones_like(y)
+    else:
+        w = _as_float(weights)
+        if w.shape != t.shape or not np.all(np.isfinite(w)) or np.any(w <= 0):
+            raise ValueError(f"weights must be finite, > 0 and of shape {t.shape}; got {w!r}")
+
+    def group_sum(x: FloatArray) -> FloatArray:
+        return np.bincount(g, weights=x, minlength=n_groups)
+
+    x_h, x_cp = _vth_terms(t, theta[g])
+    x_cp = np.where(cp[g], x_cp, 0.0)  # a group without ΔCp° has only the ΔH° term
+    w_sum = group_sum(w)
+    mean_h, mean_cp, mean_y = (group_sum(w * x) / w_sum for x in (x_h, x_cp, y))
+    # centring on the group means separates the intercept and keeps the 2x2 system well conditioned
+    c_h, c_cp, c_y = x_h - mean_h[g], x_cp - mean_cp[g], y - mean_y[g]
+    s_hh, s_hc, s_cc = group_sum(w * c_h * c_h), group_sum(w * c_h * c_cp), group_sum(w * c_cp * c_cp)
+    s_hy, s_cy = group_sum(w * c_h * c_y), group_sum(w * c_cp * c_y)
+    # inverse of the centred normal matrix [[s_hh, s_hc], [s_hc, s_cc]]; 1/s_hh alone without ΔCp°
+    det = np.where(cp, s_hh * s_cc - s_hc**2, 1.0)
+    inv_hh = np.where(cp, s_cc / det, 1.0 / s_hh)
+    inv_hc = np.where(cp, -s_hc / det, 0.0)
+    inv_cc = np.where(cp, s_hh / det, 0.0)
+    delta_h = inv_hh * s_hy + inv_hc * s_cy
+    delta_cp = inv_hc * s_hy + inv_cc * s_cy
+    pka_ref = mean_y - delta_h * mean_h - delta_cp * mean_cp  # the terms vanish at θ
+    resid = c_y - delta_h[g] * c_h - delta_cp[g] * c_cp
+    chi_squared = group_sum(w * resid**2)
+    dof = n_points - n_par
+    scale = np.ones(n_groups) if weights is not None else chi_squared / dof
+    slopes = scale[:, None, None] * np.stack([np.stack([inv_hh, inv_hc], -1), np.stack([inv_hc, inv_cc], -1)], -2)
+    means = np.stack([mean_h, mean_cp], -1)
+    cov_slopes_means = np.einsum("gij,gj->gi", slopes, means)
+    covariance = np.zeros((n_groups, 3, 3))
+    covariance[:, 1:, 1:] = slopes
+    covariance[:, 0, 1:] = covariance[:, 1:, 0] = -cov_slopes_means
+    covariance[:, 0, 0] = scale / w_sum + np.einsum("gi,gi->g", means, cov_slopes_means)
+    return VantHoffGroupFits(
+        pka_ref=pka_ref,
+        delta_h=delta_h,
+        delta_cp=np.where(cp, delta_cp, 0.0),
+        t_ref_k=theta,
+        with_heat_capacity=cp,
+        covariance=covariance,
+        chi_squared=chi_squared,
+        dof=dof,
     )
