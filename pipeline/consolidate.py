@@ -92,12 +92,17 @@ def _groups(keys: pd.DataFrame) -> tuple[np.ndarray, pd.DataFrame]:
     ([0, 1, 2, 0], {'a': ['x', 'y', 'x'], 'b': [1.0, 1.0, 2.0]})
     """
     numbers = np.zeros(len(keys), dtype=np.int64)
+    span = 1  # numbers < span
     factorized = {}
     for column in keys.columns:
         codes, uniques = pd.factorize(keys[column], use_na_sentinel=False)
         factorized[column] = codes, uniques
-        # numbers < rows and codes < rows, so the pair fits an int64 for any realistic table
-        numbers = pd.factorize(numbers * len(uniques) + codes)[0]
+        if span * max(len(uniques), 1) >= 2**62:  # renumber densely before the int64 overflows
+            numbers = pd.factorize(numbers)[0]
+            span = len(keys)
+        numbers = numbers * len(uniques) + codes  # one number per combination of the codes so far
+        span *= max(len(uniques), 1)
+    numbers = pd.factorize(numbers)[0]  # 0, 1, ... in order of first appearance
     first_rows = np.unique(numbers, return_index=True)[1]
     group_keys = pd.DataFrame({column: uniques.take(codes[first_rows]) for column, (codes, uniques) in factorized.items()})
     return numbers, group_keys
@@ -655,7 +660,8 @@ def _member_lists(group: pd.Series, value_id: pd.Series) -> pd.Series:
     by_id = _text_order(value_id)
     order = by_id[np.argsort(codes[by_id], kind="stable")]
     sorted_codes = codes[order]
-    group_ends = np.append(sorted_codes[1:] != sorted_codes[:-1], True)
+    group_ends = np.ones(len(order), dtype=bool)
+    group_ends[:-1] = sorted_codes[1:] != sorted_codes[:-1]
     pieces = np.empty(2 * len(order), dtype=object)
     pieces[0::2] = value_id.to_numpy(dtype=object)[order]
     pieces[1::2] = np.where(group_ends, '"]\x00["', '","')
