@@ -273,12 +273,10 @@ def _recommendation_ids(keys: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
     with duckdb.connect() as con:
         con.register("key_text", key_text)
         found = con.execute(
-            "SELECT position, 'kr-' || left(sha256(text), 16) AS id FROM key_text ORDER BY id"
+            "SELECT 'kr-' || left(sha256(text), 16) AS id FROM key_text ORDER BY position"
         ).fetchnumpy()
-    by_id = np.asarray(found["position"], dtype=np.int64)
-    ids = np.empty(len(keys), dtype=object)
-    ids[by_id] = np.asarray(found["id"], dtype=object)
-    return ids, by_id
+    ids = np.asarray(found["id"], dtype=object)
+    return ids, _text_order(pd.Series(ids, dtype=object))
 
 
 #: Method and category names as shared objects (arrays of them are cheap to check and hash).
@@ -664,11 +662,11 @@ def _member_lists(group: pd.Series, value_id: pd.Series) -> pd.Series:
     group_ends[:-1] = sorted_codes[1:] != sorted_codes[:-1]
     pieces = np.empty(2 * len(order), dtype=object)
     pieces[0::2] = value_id.to_numpy(dtype=object)[order]
-    pieces[1::2] = np.where(group_ends, '"]\x00["', '","')
+    pieces[1::2] = np.array(['","', '"]\x00["'], dtype=object)[group_ends.astype(np.intp)]
     lists = ('["' + "".join(pieces.tolist())).split("\x00")[:-1]
     if len(lists) != int(group_ends.sum()):
         raise ValueError("a value id holds a NUL character; value ids are 'kv-' + 16 hex digits")
-    index = pd.Index(np.asarray(uniques, dtype=object)[sorted_codes[group_ends]], tupleize_cols=False)
+    index = pd.Index(uniques, tupleize_cols=False)[sorted_codes[group_ends]]
     return pd.Series(np.array(lists, dtype=object), index=index)
 
 
