@@ -36,7 +36,6 @@ References
 
 from __future__ import annotations
 
-import hashlib
 import json
 from dataclasses import dataclass
 
@@ -77,6 +76,153 @@ def _group_keys(m: pd.DataFrame) -> pd.DataFrame:
     )
 
 
+def _groups(keys: pd.DataFrame) -> tuple[np.ndarray, pd.DataFrame]:
+    """Group number of each row of ``keys`` (all columns together), 0, 1, ... in order of first
+    appearance, as ``keys.groupby(list(keys.columns), sort=False, dropna=False).ngroup()``, and
+    the keys of each group (row g: group g).
+
+    Built from the integer codes of one column at a time, which is much faster than grouping by
+    tuples of strings and floats on a million rows; the keys' texts come from the codes'
+    distinct values, so equal texts are one object (cheap to hash and compare later).
+
+    Examples
+    --------
+    >>> numbers, keys = _groups(pd.DataFrame({"a": ["x", "y", "x", "x"], "b": [1.0, 1.0, 2.0, 1.0]}))
+    >>> numbers.tolist(), keys.to_dict("list")
+    ([0, 1, 2, 0], {'a': ['x', 'y', 'x'], 'b': [1.0, 1.0, 2.0]})
+    """
+    numbers = np.zeros(len(keys), dtype=np.int64)
+    span = 1  # numbers < span
+    factorized = {}
+    for column in keys.columns:
+        codes, uniques = pd.factorize(keys[column], use_na_sentinel=False)
+        factorized[column] = codes, uniques
+        if span * max(len(uniques), 1) >= 2**62:  # renumber densely before the int64 overflows
+            numbers = pd.factorize(numbers)[0]
+            span = len(keys)
+        numbers = numbers * len(uniques) + codes  # one number per combination of the codes so far
+        span *= max(len(uniques), 1)
+    numbers = pd.factorize(numbers)[0]  # 0, 1, ... in order of first appearance
+    first_rows = np.unique(numbers, return_index=True)[1]
+    group_keys = pd.DataFrame({column: uniques.take(codes[first_rows]) for column, (codes, uniques) in factorized.items()})
+    return numbers, group_keys
+
+
+def _per_group(values: np.ndarray, groups: pd.Categorical, how: str) -> np.ndarray:
+    """``how`` ("sum", "median", "first", "nunique", ...) of ``values`` for each category of
+    ``groups`` (group codes 0 .. n-1 as a Categorical), missing values skipped.
+
+    pandas' cython group kernels, the same arithmetic as grouping the frame (compensated sums,
+    exact medians); the codes are used as they are, so no grouping key is hashed again.
+
+    Examples
+    --------
+    >>> groups = pd.Categorical.from_codes([0, 0, 1, 1], categories=range(3))
+    >>> _per_group(np.array([1.0, 3.0, 2.0, np.nan]), groups, "median").tolist()
+    [2.0, 2.0, nan]
+    """
+    return pd.Series(values).groupby(groups, observed=False).agg(how).to_numpy()
+
+
+def _texts(template: str, numbers: np.ndarray | pd.Series) -> np.ndarray:
+    """``template.format(number)`` for each number, formatted once per distinct number.
+
+    Examples
+    --------
+    >>> _texts("{:.2f} K", np.array([298.15, 310.0, 298.15])).tolist()
+    ['298.15 K', '310.00 K', '298.15 K']
+    """
+    codes, uniques = pd.factorize(np.asarray(numbers), use_na_sentinel=False)
+    return np.array([template.format(u) for u in uniques], dtype=object)[codes]
+
+
+def _join_columns(*parts: np.ndarray | str) -> np.ndarray:
+    """Row-wise concatenation of text columns (object arrays of equal length) and constants.
+
+    One ``str.join`` over all pieces with a row separator, then one ``split``: on a million rows
+    far faster than adding column to column. Falls back to adding when a piece holds the
+    separator.
+
+    Examples
+    --------
+    >>> _join_columns("kr-", np.array(["a", "b"], dtype=object), "|", np.array(["1", "2"], dtype=object)).tolist()
+    ['kr-a|1', 'kr-b|2']
+    """
+    columns = [p for p in parts if not isinstance(p, str)]
+    n = len(columns[0])
+    grid = np.empty((n, len(parts) + 1), dtype=object)
+    for k, part in enumerate(parts):
+        grid[:, k] = part
+    grid[:, -1] = "\x00"
+    joined = "".join(grid.ravel().tolist())
+    if joined.count("\x00") == n:
+        return np.array(joined.split("\x00")[:-1], dtype=object)
+    out = np.full(n, "", dtype=object)
+    for part in parts:  # a separator inside some text: add column to column (a few steps)
+        out = out + part
+    return out
+
+
+def _hex_id_parts(ids: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
+    """(prefix, number) of ids of the form two letters, "-", 16 lower-case hex digits (our value
+    and recommendation ids, e.g. ``kv-0123456789abcdef``); ordering by prefix, then number, orders
+    the ids as text. None when some id has another form.
+
+    Examples
+    --------
+    >>> prefix, number = _hex_id_parts(np.array(["kv-00000000000000ff", "kr-0000000000000010"], dtype=object))
+    >>> number.tolist(), bool(prefix[1] < prefix[0])
+    ([255, 16], True)
+    """
+    try:
+        raw = ids.astype("S20")  # ASCII bytes; a 20th byte shows an id longer than 19
+    except (UnicodeEncodeError, TypeError, ValueError):
+        return None
+    chars = raw.view(np.uint8).reshape(len(ids), 20)
+    if len(ids) == 0 or (chars[:, 19] != 0).any() or (chars[:, 18] == 0).any():
+        return None
+    hex_text = np.ascontiguousarray(chars[:, 3:19]).tobytes().decode("ascii")
+    try:
+        number_bytes = bytes.fromhex(hex_text)
+    except ValueError:
+        return None
+    # fromhex also takes upper case and skips spaces: the round trip holds for lower case only
+    if (chars[:, 2] != ord("-")).any() or number_bytes.hex() != hex_text:
+        return None
+    number = np.frombuffer(number_bytes, dtype=">u8").astype(np.uint64)
+    prefix = (chars[:, 0].astype(np.uint16) << 8) | chars[:, 1]
+    return prefix, number
+
+
+def _text_order(ids: pd.Series, minor: np.ndarray | None = None) -> np.ndarray:
+    """Positions that sort ``ids`` as text and, among equal ids, by ``minor`` (small integers
+    >= 0, e.g. lineage step numbers), as ``sort_values([ids, minor])`` would.
+
+    Our ids sort as numbers (:func:`_hex_id_parts`): one argsort of the numbers, then cheap
+    stable passes; other ids take a general (slower) text sort.
+
+    Examples
+    --------
+    >>> _text_order(pd.Series(["kv-0000000000000002", "kv-0000000000000001", "kv-0000000000000002"]),
+    ...             np.array([2, 1, 1])).tolist()
+    [1, 2, 0]
+    >>> _text_order(pd.Series(["b", "a"])).tolist()
+    [1, 0]
+    """
+    minor = np.zeros(len(ids), dtype=np.int64) if minor is None else np.asarray(minor, dtype=np.int64)
+    parts = _hex_id_parts(ids.to_numpy(dtype=object))
+    if parts is None or (len(minor) and (minor.min() < 0 or minor.max() > 2**20)):
+        frame = pd.DataFrame({"id": ids.to_numpy(dtype=object), "minor": minor})
+        return frame.sort_values(["id", "minor"], kind="stable").index.to_numpy()
+    prefix, number = parts
+    order = np.argsort(number)
+    sorted_number = number[order]
+    id_rank = np.concatenate([[0], np.cumsum(sorted_number[1:] != sorted_number[:-1])])
+    # (id rank, minor) is nearly sorted already, so the stable sort is quick
+    order = order[np.argsort(id_rank * (int(minor.max(initial=0)) + 1) + minor[order], kind="stable")]
+    return order[np.argsort(prefix[order], kind="stable")]  # 16-bit keys: a radix sort
+
+
 def mark_copies(m: pd.DataFrame, source_kind: pd.Series) -> pd.Series:
     """``copy_of`` for each measurement: the value id of the original, or None.
 
@@ -84,27 +230,59 @@ def mark_copies(m: pd.DataFrame, source_kind: pd.Series) -> pd.Series:
     lowest source id and row.
     """
     ref = reference_key(m["reference"])
-    has_ref = ref.notna()
-    key = _group_keys(m)
-    key["ref"] = ref
-    key["pka3"] = m["pka"].round(3)
-    key["rank"] = m["source_id"].map(source_kind).map(SOURCE_KIND_RANK).fillna(9)
-    key["source_id"] = m["source_id"]
-    key["source_row"] = m["source_row"]
-    key["value_id"] = m["value_id"]
-    keyed = key[has_ref].sort_values(["rank", "source_id", "source_row"])
-    group = ["compound_id", "step", "t", "i", "constant_type", "ref", "pka3"]
-    first = keyed.groupby(group)["value_id"].transform("first")
-    copy_of = pd.Series(None, index=m.index, dtype=object)
-    is_copy = first != keyed["value_id"]
-    copy_of[is_copy[is_copy].index] = first[is_copy]
-    return copy_of
+    has_ref = ref.notna().to_numpy()
+    cited = m[has_ref]
+    key = _group_keys(cited)
+    key["ref"] = ref[has_ref]
+    key["pka3"] = cited["pka"].round(3)
+    group = _groups(key)[0]
+    rank = cited["source_id"].map(source_kind).map(SOURCE_KIND_RANK).fillna(9).to_numpy()
+    source_code = pd.factorize(cited["source_id"], sort=True)[0]  # codes in text order
+    by_preference = np.lexsort((cited["source_row"].to_numpy(), source_code, rank))  # stable
+    # the preferred member of each group is its first one in that order
+    first_seen = np.unique(group[by_preference], return_index=True)[1]
+    original = by_preference[first_seen][group]
+    is_copy = original != np.arange(len(cited))
+    copy_of = np.full(len(m), np.nan, dtype=object)  # NaN, as pd.Series(None, dtype=object) holds
+    copy_of[np.flatnonzero(has_ref)[is_copy]] = cited["value_id"].to_numpy(dtype=object)[original[is_copy]]
+    return pd.Series(copy_of, index=m.index, dtype=object)
 
 
-def _recommendation_ids(keys: pd.DataFrame) -> list[str]:
-    text = (keys["compound_id"] + "|" + keys["step"].astype(str) + "|" + keys["t"].map("{:.2f}".format)
-            + "|" + keys["i"].map("{:.3f}".format) + "|" + keys["constant_type"])
-    return ["kr-" + hashlib.sha256(s.encode()).hexdigest()[:16] for s in text]
+def _recommendation_ids(keys: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
+    """``kr-`` + the first 16 hex digits of the SHA-256 of "compound|step|T|I|constant type"
+    (T to 0.01 K, I to 0.001 mol/kg) for each row of ``keys``, hashed in DuckDB, and the
+    positions that sort the ids.
+
+    Examples
+    --------
+    >>> ids, by_id = _recommendation_ids(pd.DataFrame({"compound_id": ["acetic"], "step": [1], "t": [298.15],
+    ...                                                "i": [0.0], "constant_type": ["thermodynamic"]}))
+    >>> ids.tolist(), by_id.tolist()
+    (['kr-07c7c7f05bf99bce'], [0])
+    """
+    key_text = pd.DataFrame(
+        {
+            "text": _join_columns(
+                keys["compound_id"].to_numpy(dtype=object), "|", _texts("{}", keys["step"]), "|",
+                _texts("{:.2f}", keys["t"]), "|", _texts("{:.3f}", keys["i"]), "|",
+                keys["constant_type"].to_numpy(dtype=object),
+            ),
+            "position": np.arange(len(keys)),
+        }
+    )
+    with duckdb.connect() as con:
+        con.register("key_text", key_text)
+        found = con.execute(
+            "SELECT 'kr-' || left(sha256(text), 16) AS id FROM key_text ORDER BY position"
+        ).fetchnumpy()
+    ids = np.asarray(found["id"], dtype=object)
+    return ids, _text_order(pd.Series(ids, dtype=object))
+
+
+#: Method and category names as shared objects (arrays of them are cheap to check and hash).
+METHODS = np.array(["single", "weighted_mean", "median_mad"], dtype=object)
+CATEGORIES = np.array(["Recommended", "Tentative", "Doubtful"], dtype=object)
+RECOMMENDED_CATEGORY, TENTATIVE, DOUBTFUL = 0, 1, 2
 
 
 def consensus(members: pd.DataFrame) -> tuple[pd.DataFrame, pd.Series]:
@@ -126,99 +304,116 @@ def consensus(members: pd.DataFrame) -> tuple[pd.DataFrame, pd.Series]:
     >>> round(float(table["pka"].iloc[0]), 3), outlier.tolist()
     (4.76, [False, False, False, True])
     """
-    # work on integer group codes (grouping by tuples of keys is slow on a million rows)
-    codes, uniques = pd.factorize(members["group"])
-    members = members.assign(group=codes)
-    g = members.groupby("group", sort=False)
-    median = g["pka"].transform("median")
-    mad = (members["pka"] - median).abs().groupby(members["group"]).transform("median")
-    scale = np.maximum(MAD_TO_SIGMA * mad, DEFAULT_SPREAD)
-    n_all = g["pka"].transform("size")
-    robust_z = (members["pka"] - median).abs() / scale
-    outlier = (n_all >= 3) & (robust_z > OUTLIER_Z)
-    kept = members[~outlier].copy()
-    u = kept["pka_uncertainty"]
-    kept["w"] = 1.0 / u.where(u > 0) ** 2
-    kept["wx"] = kept["w"] * kept["pka"]
-    kg = kept.groupby("group", sort=False)
-    out = pd.DataFrame(
-        {
-            "n_values": kg["pka"].size(),
-            "n_sources": kg["source_id"].nunique(),
-            "all_u": kg["w"].count() == kg["pka"].size(),
-            "sum_w": kg["w"].sum(),
-            "sum_wx": kg["wx"].sum(),
-            "median": kg["pka"].median(),
-            "mean": kg["pka"].mean(),
-            "min": kg["pka"].min(),
-            "max": kg["pka"].max(),
-            "u_single": kg["pka_uncertainty"].first(),
-            "all_flagged": kg["flagged"].all(),
-        }
-    )
-    weighted_mean = out["sum_wx"] / out["sum_w"]
-    kept["wmean"] = kept["group"].map(weighted_mean)
-    chi2 = (kept["w"] * (kept["pka"] - kept["wmean"]) ** 2).groupby(kept["group"], sort=False).sum()
-    n = out["n_values"]
-    birge = np.sqrt(chi2 / (n - 1)).where(out["all_u"] & (n > 1))
-    internal_u = 1.0 / np.sqrt(out["sum_w"])
-    kept_mad = (kept["pka"] - kept["group"].map(out["median"])).abs().groupby(kept["group"], sort=False).median()
+    # integer group codes and numpy arrays: each per-group figure is one pandas group kernel
+    codes, uniques = pd.factorize(members["group"], use_na_sentinel=False)
+    n_groups = len(uniques)
+    every_group = pd.RangeIndex(n_groups)
+    all_members = pd.Categorical.from_codes(codes, categories=every_group)
+    pka = members["pka"].to_numpy(dtype=float)
+    median = _per_group(pka, all_members, "median")[codes]
+    deviation = np.abs(pka - median)
+    scale = np.maximum(MAD_TO_SIGMA * _per_group(deviation, all_members, "median")[codes], DEFAULT_SPREAD)
+    n_all = np.bincount(codes, minlength=n_groups)[codes]
+    outlier = (n_all >= 3) & (deviation / scale > OUTLIER_Z)
+
+    keep = ~outlier
+    group = codes[keep]
+    x = pka[keep]
+    u = members["pka_uncertainty"].to_numpy(dtype=float)[keep]
+    with np.errstate(divide="ignore", over="ignore"):
+        w = 1.0 / np.where(u > 0, u, np.nan) ** 2
+    source_code = pd.factorize(members["source_id"])[0][keep].astype(float)
+    source_code[source_code < 0] = np.nan  # a missing source id is no source
+
+    kept_members = pd.Categorical.from_codes(group, categories=every_group)
+
+    def per_group(values: np.ndarray, how: str) -> np.ndarray:
+        return _per_group(values, kept_members, how)
+
+    n = np.bincount(group, minlength=n_groups)
+    n_sources = per_group(source_code, "nunique")
+    all_u = np.bincount(group, weights=~np.isnan(w), minlength=n_groups) == n
+    sum_w = per_group(w, "sum")
+    sum_wx = per_group(w * x, "sum")
+    median_kept = per_group(x, "median")
+    with np.errstate(divide="ignore", invalid="ignore"):  # 0/0 where a group has no weights
+        weighted_mean = sum_wx / sum_w
+        chi2 = per_group(w * (x - weighted_mean[group]) ** 2, "sum")
+        birge = np.where(all_u & (n > 1), np.sqrt(chi2 / (n - 1)), np.nan)
+        internal_u = 1.0 / np.sqrt(sum_w)
+        stated_u = 1.0 / np.sqrt(np.where(sum_w > 0, sum_w, np.nan))
+    low, high = per_group(x, "min"), per_group(x, "max")
+    kept_mad = per_group(np.abs(x - median_kept[group]), "median")
     # the median's standard uncertainty is sqrt(pi/2)·sigma/sqrt(n) for normal data; it is never
     # taken below what the members state themselves (their combined uncertainty) nor below the
     # customary pKa reproducibility over sqrt(n), so identical values do not give u = 0
-    stated_u = 1.0 / np.sqrt(out["sum_w"].where(out["sum_w"] > 0))
     robust_u = np.fmax(
         np.maximum.reduce(
             [
                 MEDIAN_EFFICIENCY * MAD_TO_SIGMA * kept_mad / np.sqrt(n),
-                (out["max"] - out["min"]) / (2 * np.sqrt(n)),
+                (high - low) / (2 * np.sqrt(n)),
                 DEFAULT_SPREAD / np.sqrt(n),
             ]
         ),
         stated_u,
     )
+    u_single = per_group(u, "first")
+    all_flagged = per_group(members["flagged"].to_numpy(dtype=bool)[keep], "all").astype(bool)
 
     single = n == 1
-    use_weighted = ~single & out["all_u"]
-    out["method"] = np.where(single, "single", np.where(use_weighted, "weighted_mean", "median_mad"))
-    out["pka"] = np.where(single, out["median"], np.where(use_weighted, weighted_mean, out["median"]))
-    out["pka_uncertainty"] = np.where(
-        single, out["u_single"], np.where(use_weighted, internal_u * np.maximum(1.0, birge.fillna(1.0)), robust_u)
+    use_weighted = ~single & all_u
+    method = METHODS[np.where(single, 0, np.where(use_weighted, 1, 2))]
+    value = np.where(single, median_kept, np.where(use_weighted, weighted_mean, median_kept))
+    uncertainty = np.where(
+        single, u_single, np.where(use_weighted, internal_u * np.maximum(1.0, np.where(np.isnan(birge), 1.0, birge)), robust_u)
     )
-    out["birge_ratio"] = birge
     discordant = birge > BIRGE_DISCORDANT
-    n_outliers = outlier.groupby(members["group"], sort=False).sum().reindex(out.index).fillna(0)
-    out["category"] = np.select(
-        [discordant | out["all_flagged"], (out["n_sources"] >= 2) & (use_weighted | ~out["all_u"])],
-        ["Doubtful", "Recommended"],
-        "Tentative",
+    n_outliers = np.bincount(codes[outlier], minlength=n_groups)
+    category = np.select(
+        [discordant | all_flagged, (n_sources >= 2) & (use_weighted | ~all_u)],
+        [DOUBTFUL, RECOMMENDED_CATEGORY],
+        TENTATIVE,
     )
     # without uncertainties, agreement of several sources is still only Tentative
-    out.loc[(out["category"] == "Recommended") & ~out["all_u"], "category"] = "Tentative"
-    reason = np.select(
-        [
-            discordant,
-            out["all_flagged"],
-            single,
-            ~out["all_u"],
-        ],
-        [
-            "sources disagree beyond their uncertainties (Birge ratio " + birge.round(2).astype(str) + ")",
-            "every member carries a warning finding",
-            "one measurement only",
-            "uncertainties missing: median of " + n.astype(str) + " values",
-        ],
-        "",
-    )
-    reason = pd.Series(reason, index=out.index).where(
-        pd.Series(reason, index=out.index) != "",
-        out["n_sources"].astype(str) + " sources agree within their uncertainties",
-    )
-    reason = reason.where(n_outliers == 0, reason + "; " + n_outliers.astype(int).astype(str) + " outlier(s) left out")
-    out["reason"] = reason
-    out.index = pd.Index(uniques, tupleize_cols=False)[out.index.to_numpy()]
+    category[(category == RECOMMENDED_CATEGORY) & ~all_u] = TENTATIVE
+    category = CATEGORIES[category]
+    # the reason: the first that applies of discordant, all flagged, single, no uncertainties,
+    # else agreement (written from the last to the first, so the first wins)
+    reason = _texts("{} sources agree within their uncertainties", n_sources.astype(np.int64))
+    reason[~all_u] = _texts("uncertainties missing: median of {} values", n[~all_u])
+    reason[single] = "one measurement only"
+    reason[all_flagged] = "every member carries a warning finding"
+    birge_text = pd.Series(birge[discordant]).round(2).astype(str).to_numpy(dtype=object)
+    reason[discordant] = "sources disagree beyond their uncertainties (Birge ratio " + birge_text + ")"
+    has_outliers = n_outliers > 0
+    reason[has_outliers] = reason[has_outliers] + _texts("; {} outlier(s) left out", n_outliers[has_outliers])
+
+    # groups in order of their first kept member, labelled with the caller's keys
+    order = pd.unique(group)
+    out = pd.DataFrame(
+        {
+            "n_values": n,
+            "n_sources": n_sources.astype(np.int64),
+            "all_u": all_u,
+            "sum_w": sum_w,
+            "sum_wx": sum_wx,
+            "median": median_kept,
+            "mean": per_group(x, "mean"),
+            "min": low,
+            "max": high,
+            "u_single": u_single,
+            "all_flagged": all_flagged,
+            "method": method,
+            "pka": value,
+            "pka_uncertainty": uncertainty,
+            "birge_ratio": birge,
+            "category": category,
+            "reason": reason,
+        }
+    ).iloc[order]
+    out.index = pd.Index(uniques, tupleize_cols=False)[order]
     out.index.name = "group"
-    return out, outlier
+    return out, pd.Series(outlier, index=members.index)
 
 
 #: Columns of the optional ΔH° table for :func:`transfer_to_reference_state`.
@@ -439,7 +634,7 @@ def _worst_severity(findings: pd.DataFrame) -> pd.Series:
     """Worst severity per value id (error > warning > info)."""
     rank = {"info": 0, "warning": 1, "error": 2}
     f = findings.dropna(subset=["value_id"])
-    worst = f["severity"].map(rank).groupby(f["value_id"]).max()
+    worst = f["severity"].map(rank).groupby(f["value_id"], sort=False).max()
     return worst.map({v: k for k, v in rank.items()})
 
 
@@ -448,7 +643,11 @@ def _json_list(values: pd.Series) -> str:
 
 
 def _member_lists(group: pd.Series, value_id: pd.Series) -> pd.Series:
-    """Per group, the JSON array of its members' value ids, sorted (DuckDB string_agg).
+    """Per group, the JSON array of its members' value ids, sorted.
+
+    All members in (group, value id) order are joined into one string, with ``"]`` + NUL +
+    ``["`` at each group's end, and split at the NULs: no Python work per group. Value ids
+    (``kv-`` + hex digits) need no JSON escaping.
 
     Examples
     --------
@@ -456,13 +655,24 @@ def _member_lists(group: pd.Series, value_id: pd.Series) -> pd.Series:
     {'g': '["kv-a","kv-b"]', 'h': '["kv-c"]'}
     """
     codes, uniques = pd.factorize(group)
-    ids = pd.DataFrame({"code": codes, "value_id": value_id.to_numpy()})  # noqa: F841 (read by DuckDB)
-    agg = duckdb.sql(
-        """SELECT code, '["' || string_agg(value_id, '","' ORDER BY value_id) || '"]' AS members
-           FROM ids GROUP BY code ORDER BY code"""
-    ).df()
-    index = pd.Index(np.asarray(uniques, dtype=object)[agg["code"].to_numpy()], tupleize_cols=False)
-    return pd.Series(agg["members"].to_numpy(), index=index)
+    by_id = _text_order(value_id)
+    order = by_id[np.argsort(codes[by_id], kind="stable")]
+    sorted_codes = codes[order]
+    group_ends = np.ones(len(order), dtype=bool)
+    group_ends[:-1] = sorted_codes[1:] != sorted_codes[:-1]
+    pieces = np.empty(2 * len(order), dtype=object)
+    pieces[0::2] = value_id.to_numpy(dtype=object)[order]
+    pieces[1::2] = np.array(['","', '"]\x00["'], dtype=object)[group_ends.astype(np.intp)]
+    lists = ('["' + "".join(pieces.tolist())).split("\x00")[:-1]
+    if len(lists) != int(group_ends.sum()):
+        raise ValueError("a value id holds a NUL character; value ids are 'kv-' + 16 hex digits")
+    index = pd.Index(uniques, tupleize_cols=False)[sorted_codes[group_ends]]
+    return pd.Series(np.array(lists, dtype=object), index=index)
+
+
+#: Columns of a measurement that grouping, consensus and the reference-state transfer read.
+MEMBER_COLUMNS = ["value_id", "compound_id", "step", "pka", "pka_uncertainty", "temperature_k",
+                  "ionic_strength_molal", "constant_type", "charge", "source_id"]
 
 
 def consolidate(
@@ -476,8 +686,9 @@ def consolidate(
 ) -> ConsolidateResult:
     """Mark copies and status, compute recommended values, and extend the lineage.
 
-    ``lineage`` holds the measurements' steps so far; the result adds a step to each copy and
-    one ``consensus`` step to each recommended value.
+    ``lineage`` holds the measurements' steps so far (normalize's validated table; with the
+    schema's column types it is not validated again); the result adds a step to each copy and
+    one ``consensus`` step to each recommended value, sorted by target id and step.
 
     ``reference_state`` = (temperature [K], ionic strength [mol/kg]), e.g. ``(298.15, 0.0)``,
     carries every usable member there first (:func:`transfer_to_reference_state`, with the
@@ -487,25 +698,34 @@ def consolidate(
     ``consensus`` step, and its reason says how many members were carried, or why not. The
     stored ``measurements`` keep the measured values. ``None`` (the default) transfers nothing.
     """
-    m = measurements.copy()
+    # a shallow copy: pandas copies on write, so replacing columns leaves the caller's frame as is
+    m = measurements.copy(deep=False)
     kind = sources.set_index("source_id")["kind"]
     m["copy_of"] = mark_copies(m, kind)
-    sev = m["value_id"].map(_worst_severity(findings))
-    m["status"] = np.where(sev.eq("error"), "excluded", np.where(sev.eq("warning"), "flagged", "ok"))
+    worst = _worst_severity(findings)
+    finding_of = worst.index.get_indexer(m["value_id"])  # one pass over the million value ids
+    has_finding = finding_of >= 0
+    severity = worst.to_numpy(dtype=object)[finding_of[has_finding]]
+    status = np.full(len(m), "ok", dtype="<U8")
+    status[has_finding] = np.where(severity == "error", "excluded", np.where(severity == "warning", "flagged", "ok"))
 
-    usable = m["copy_of"].isna() & (m["status"] != "excluded") & m["qualifier"].isna() & (m["solvent"] == "water")
-    members = m[usable].copy()
+    usable = (m["copy_of"].isna().to_numpy() & (status != "excluded") & m["qualifier"].isna().to_numpy()
+              & (m["solvent"] == "water").to_numpy())
+    members = m.loc[usable, MEMBER_COLUMNS]
     transfer: pd.DataFrame | None = None
     if reference_state is not None:
         vh_outliers = set(findings.loc[findings["rule"] == "van_t_hoff_outlier", "value_id"].dropna())
         transfer = transfer_to_reference_state(members, reference_state, enthalpies, vh_outliers, activity_model)
         for column in ("pka", "temperature_k", "ionic_strength_molal", "constant_type"):
             members[column] = transfer[column]
-    keys = _group_keys(members)
-    members["group"] = keys.groupby(list(keys.columns), sort=False, dropna=False).ngroup().to_numpy()
-    group_keys = keys.assign(group=members["group"]).drop_duplicates("group").set_index("group")
-    members["flagged"] = members["status"] == "flagged"
-    table, outlier = consensus(members[["group", "pka", "pka_uncertainty", "source_id", "flagged"]])
+    members["group"], group_keys = _groups(_group_keys(members))
+    table, outlier = consensus(
+        pd.DataFrame(
+            {"group": members["group"], "pka": members["pka"], "pka_uncertainty": members["pka_uncertainty"],
+             "source_id": members["source_id"], "flagged": status[usable] == "flagged"},
+            index=members.index,
+        )
+    )
 
     if transfer is not None:
         t_ref, i_ref = reference_state  # type: ignore[misc]
@@ -521,27 +741,30 @@ def consolidate(
         table["reason"] = (table["reason"] + moved_text.where(n_moved > 0, "")
                            + np.where(notes != "", f"; not carried to {where}: " + notes, ""))
 
-    key_frame = group_keys.loc[table.index].reset_index(drop=True)
-    rec_ids = _recommendation_ids(key_frame)
-    rec = pd.DataFrame(
-        {
-            "recommendation_id": rec_ids,
-            "compound_id": key_frame["compound_id"],
-            "step": key_frame["step"].replace(0, pd.NA).astype("Int64"),
-            "temperature_k": key_frame["t"],
-            "ionic_strength_molal": key_frame["i"],
-            "constant_type": key_frame["constant_type"],
-            "pka": table["pka"].to_numpy(),
-            "pka_uncertainty": table["pka_uncertainty"].to_numpy(),
-            "n_values": table["n_values"].to_numpy().astype("int64"),
-            "n_sources": table["n_sources"].to_numpy().astype("int64"),
-            "method": table["method"].to_numpy(),
-            "birge_ratio": table["birge_ratio"].to_numpy(),
-            "category": table["category"].to_numpy(),
-            "reason": table["reason"].to_numpy(),
-        }
+    key_frame = group_keys.iloc[table.index.to_numpy(dtype=np.int64)].reset_index(drop=True)
+    rec_ids, by_id = _recommendation_ids(key_frame)
+    # the recommended table in id order: every column is taken in that order once
+    step = key_frame["step"].to_numpy()[by_id]
+    rec = RECOMMENDED.validate(
+        pd.DataFrame(
+            {
+                "recommendation_id": rec_ids[by_id],
+                "compound_id": key_frame["compound_id"].to_numpy()[by_id],
+                "step": pd.arrays.IntegerArray(step, step == 0),  # step 0 stood for "no step"
+                "temperature_k": key_frame["t"].to_numpy()[by_id],
+                "ionic_strength_molal": key_frame["i"].to_numpy()[by_id],
+                "constant_type": key_frame["constant_type"].to_numpy()[by_id],
+                "pka": table["pka"].to_numpy()[by_id],
+                "pka_uncertainty": table["pka_uncertainty"].to_numpy()[by_id],
+                "n_values": table["n_values"].to_numpy().astype("int64")[by_id],
+                "n_sources": table["n_sources"].to_numpy().astype("int64")[by_id],
+                "method": table["method"].to_numpy()[by_id],
+                "birge_ratio": table["birge_ratio"].to_numpy()[by_id],
+                "category": table["category"].to_numpy()[by_id],
+                "reason": table["reason"].to_numpy()[by_id],
+            }
+        )
     )
-    rec = RECOMMENDED.validate(rec.sort_values("recommendation_id").reset_index(drop=True))
 
     outliers = members[outlier.to_numpy()]
     at = "" if transfer is None else " (carried to the reference state)"
@@ -554,8 +777,14 @@ def consolidate(
             + " is a gross outlier among independent values at the same conditions; left out of the recommended value",
         }
     )
-    m.loc[outliers.index, "status"] = "flagged"
-    all_findings = attach_locations(pd.concat([findings, new_findings], ignore_index=True), m)
+    outlier_rows = m.index.get_indexer(outliers.index)
+    status[outlier_rows] = "flagged"
+    m["status"] = status
+    # locations come from the measurements that have findings (a small part of a million rows)
+    located = has_finding.copy()
+    located[outlier_rows] = True
+    all_findings = attach_locations(pd.concat([findings, new_findings], ignore_index=True),
+                                    m.loc[located, ["value_id", "compound_id", "source_id", "source_row"]])
 
     # lineage of each recommended value: its members (outliers excluded) and the method
     kept = members[~outlier.to_numpy()]
@@ -595,21 +824,25 @@ def consolidate(
                 }
             )
             consensus_step[per_group.index] = 2
+    birge = table["birge_ratio"].to_numpy(dtype=float)
+    birge_text = np.full(len(table), "null", dtype=object)
+    has_birge = ~np.isnan(birge)
+    birge_text[has_birge] = [str(round(float(b), 4)) for b in birge[has_birge]]  # Python's exact rounding
     rec_lineage = pd.DataFrame(
         {
             "target_id": rec_ids,
             "step_no": consensus_step.to_numpy(),
             "operation": "consensus",
-            "parameters": [
-                f'{{"method":"{mt}","n_values":{nv},"birge_ratio":{"null" if pd.isna(b) else round(float(b), 4)},'
-                f'"category":"{c}"}}'
-                for mt, nv, b, c in zip(table["method"], table["n_values"], table["birge_ratio"], table["category"], strict=True)
-            ],
+            "parameters": _join_columns(
+                '{"method":"', table["method"].to_numpy(dtype=object), '","n_values":', _texts("{}", table["n_values"]),
+                ',"birge_ratio":', birge_text, ',"category":"', table["category"].to_numpy(dtype=object), '"}',
+            ),
             "inputs": inputs.reindex(table.index).to_numpy(),
         }
     )
     copies = m[m["copy_of"].notna()]
-    last_step = lineage.groupby("target_id")["step_no"].max()
+    copied_steps = lineage.loc[lineage["target_id"].isin(copies["value_id"]), ["target_id", "step_no"]]
+    last_step = copied_steps.groupby("target_id")["step_no"].max()
     copy_lineage = pd.DataFrame(
         {
             "target_id": copies["value_id"],
@@ -619,14 +852,16 @@ def consolidate(
             "inputs": '["' + copies["copy_of"] + '"]',
         }
     )
-    parts = [lineage, copy_lineage, rec_lineage] + ([transfer_lineage] if len(transfer_lineage) else [])
+    added = LINEAGE.validate(pd.concat(
+        [copy_lineage, rec_lineage] + ([transfer_lineage] if len(transfer_lineage) else []), ignore_index=True
+    ))
+    if list(lineage.dtypes.items()) != list(added.dtypes.items()):
+        lineage = LINEAGE.validate(lineage)  # not normalize's table: coerce and check it as before
+    all_lineage = pd.concat([lineage, added], ignore_index=True)
+    order = _text_order(all_lineage["target_id"], all_lineage["step_no"].to_numpy())
     return ConsolidateResult(
         measurements=m,
         recommended=rec,
-        lineage=LINEAGE.validate(
-            pd.concat(parts, ignore_index=True)
-            .sort_values(["target_id", "step_no"])
-            .reset_index(drop=True)
-        ),
+        lineage=all_lineage.take(order).reset_index(drop=True),
         findings=all_findings,
     )
