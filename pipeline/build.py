@@ -33,7 +33,16 @@ from rich.progress import (
     TimeElapsedColumn,
 )
 
-from pipeline import checks, consolidate, identity, normalize, provenance, publish, stage_cache
+from pipeline import (
+    checks,
+    consolidate,
+    identity,
+    lineage,
+    normalize,
+    provenance,
+    publish,
+    stage_cache,
+)
 from pipeline.descriptor import DescriptorError, discover_sources
 from pipeline.schemas import SCHEMA_VERSION
 
@@ -291,7 +300,10 @@ def build(
         found = pd.concat([rule_findings, norm.identity_findings], ignore_index=True)
         stages.begin("consolidate")
         _pause_for_test("consolidate")
-        cons = consolidate.consolidate(norm.measurements, found, read.source_files, norm.lineage)
+        cons = consolidate.consolidate(
+            norm.measurements, found, read.source_files,
+            lineage.step_counts(norm.cell_facts, norm.measurements),
+        )
 
         counts = cons.measurements.groupby("source_id").size()
         rejected = norm.rejects.drop_duplicates(["source_id", "source_row"]).groupby("source_id").size()
@@ -317,7 +329,7 @@ def build(
         info.update(provenance.build_manifest(  # input_sha256, stage_counts, library_versions
             {"sources": sources, "compounds": norm.compounds, "measurements": cons.measurements,
              "rejects": norm.rejects, "findings": cons.findings, "recommended": cons.recommended,
-             "lineage": cons.lineage},
+             "lineage": cons.lineage, "cell_facts": norm.cell_facts},
             raw_dir, config_path,
         ))
         build_info = pd.DataFrame({"key": list(info), "value": list(info.values())})
@@ -335,6 +347,7 @@ def build(
                 "build_info": build_info,
             },
             out_path,
+            cell_facts=norm.cell_facts,  # the measurements' own lineage steps, expanded in the file
         )
     per_source = sources[["source_id", "row_count", "accepted", "rejected"]].rename(
         columns={"row_count": "rows_read"}

@@ -59,7 +59,7 @@ MEDIAN_EFFICIENCY = 1.2533  # sqrt(pi/2): standard error of the median over that
 class ConsolidateResult:
     measurements: pd.DataFrame
     recommended: pd.DataFrame
-    lineage: pd.DataFrame
+    lineage: pd.DataFrame  # the steps this stage adds (copies, consensus, transfers)
     findings: pd.DataFrame
 
 
@@ -679,16 +679,18 @@ def consolidate(
     measurements: pd.DataFrame,
     findings: pd.DataFrame,
     sources: pd.DataFrame,
-    lineage: pd.DataFrame,
+    steps_so_far: pd.Series | None = None,
     reference_state: tuple[float, float] | None = None,
     enthalpies: pd.DataFrame | None = None,
     activity_model: str = "davies",
 ) -> ConsolidateResult:
-    """Mark copies and status, compute recommended values, and extend the lineage.
+    """Mark copies and status, compute recommended values, and the lineage steps they add.
 
-    ``lineage`` holds the measurements' steps so far (normalize's validated table; with the
-    schema's column types it is not validated again); the result adds a step to each copy and
-    one ``consensus`` step to each recommended value, sorted by target id and step.
+    ``steps_so_far`` gives each measurement's number of lineage steps before this stage (by
+    value id; :func:`pipeline.lineage.step_counts`, none when omitted). The result's
+    ``lineage`` holds only this stage's steps, sorted by target id and step: one
+    ``recognised_as_copy`` step after each copy's own, and a ``consensus`` step for each
+    recommended value (publish writes them with the measurements' steps).
 
     ``reference_state`` = (temperature [K], ionic strength [mol/kg]), e.g. ``(298.15, 0.0)``,
     carries every usable member there first (:func:`transfer_to_reference_state`, with the
@@ -841,12 +843,11 @@ def consolidate(
         }
     )
     copies = m[m["copy_of"].notna()]
-    copied_steps = lineage.loc[lineage["target_id"].isin(copies["value_id"]), ["target_id", "step_no"]]
-    last_step = copied_steps.groupby("target_id")["step_no"].max()
+    earlier = steps_so_far if steps_so_far is not None else pd.Series(dtype="int64")
     copy_lineage = pd.DataFrame(
         {
             "target_id": copies["value_id"],
-            "step_no": copies["value_id"].map(last_step).fillna(0).astype("int64") + 1,
+            "step_no": copies["value_id"].map(earlier).fillna(0).astype("int64") + 1,
             "operation": "recognised_as_copy",
             "parameters": '{"rule":"same compound, step, conditions, primary reference and value"}',
             "inputs": '["' + copies["copy_of"] + '"]',
@@ -855,13 +856,10 @@ def consolidate(
     added = LINEAGE.validate(pd.concat(
         [copy_lineage, rec_lineage] + ([transfer_lineage] if len(transfer_lineage) else []), ignore_index=True
     ))
-    if list(lineage.dtypes.items()) != list(added.dtypes.items()):
-        lineage = LINEAGE.validate(lineage)  # not normalize's table: coerce and check it as before
-    all_lineage = pd.concat([lineage, added], ignore_index=True)
-    order = _text_order(all_lineage["target_id"], all_lineage["step_no"].to_numpy())
+    order = _text_order(added["target_id"], added["step_no"].to_numpy())
     return ConsolidateResult(
         measurements=m,
         recommended=rec,
-        lineage=all_lineage.take(order).reset_index(drop=True),
+        lineage=added.take(order).reset_index(drop=True),
         findings=all_findings,
     )

@@ -16,7 +16,6 @@ import json
 import numpy as np
 import pandas as pd
 import pytest
-from pipeline.schemas.tables import LINEAGE
 from test_checks import make_measurements
 
 from pipeline.consolidate import consensus, consolidate, mark_copies, transfer_to_reference_state
@@ -32,13 +31,9 @@ def _no_findings() -> pd.DataFrame:
     return pd.DataFrame(columns=["rule", "severity", "value_id", "message"])
 
 
-def _no_lineage() -> pd.DataFrame:
-    return pd.DataFrame({c: pd.Series(dtype="int64" if c == "step_no" else object) for c in LINEAGE.columns})
-
-
 def _run(rows: list[dict], findings: pd.DataFrame | None = None, **kwargs: object):
     m = make_measurements(rows)
-    return m, consolidate(m, _no_findings() if findings is None else findings, _sources(), _no_lineage(), **kwargs)
+    return m, consolidate(m, _no_findings() if findings is None else findings, _sources(), **kwargs)
 
 
 def _members(pka: list[float], u: list[float | None], sources: list[str] | None = None,
@@ -151,7 +146,7 @@ def test_error_findings_keep_a_value_out() -> None:
     m = make_measurements([{"pka": 40.0}, {"pka": 4.756, "compound_id": "Y"}])
     findings = pd.DataFrame({"rule": ["pka_physical_bounds"], "severity": ["error"],
                              "value_id": [m.loc[0, "value_id"]], "message": ["pKa 40"]})
-    result = consolidate(m, findings, _sources(), _no_lineage())
+    result = consolidate(m, findings, _sources())
     assert result.measurements["status"].tolist() == ["excluded", "ok"]
     assert result.recommended["compound_id"].tolist() == ["Y"]
 
