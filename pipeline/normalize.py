@@ -527,26 +527,62 @@ def normalize_rows(
     )
 
 
-def _most_common(frame: pd.DataFrame, column: str) -> pd.Series:
-    """Per compound, the most frequent non-empty value of ``column`` (ties: alphabetical)."""
-    counts = frame.dropna(subset=[column]).groupby(["compound_id", column]).size().rename("n")
-    ranked = counts.reset_index().sort_values(["compound_id", "n", column], ascending=[True, False, True])
-    return ranked.drop_duplicates("compound_id").set_index("compound_id")[column]
+def _first_present(values: np.ndarray, by_group: np.ndarray, group: np.ndarray, n_groups: int) -> np.ndarray:
+    """Per group (codes 0..n-1), the first non-missing value in row order, else None.
+
+    ``by_group`` is a stable argsort of ``group`` (rows grouped, row order kept within each).
+    """
+    rows = by_group[~pd.isna(values[by_group])]
+    groups = group[rows]
+    starts = np.flatnonzero(np.diff(groups, prepend=-1) != 0)  # first present row of each group
+    out = np.full(n_groups, None, dtype=object)
+    out[groups[starts]] = values[rows[starts]]
+    return out
+
+
+def _most_common(values: np.ndarray, group: np.ndarray, n_groups: int, rows: np.ndarray) -> np.ndarray:
+    """Per group, the most frequent non-missing value among ``rows`` (ties: alphabetical)."""
+    picked = rows & ~pd.isna(values)
+    codes, uniques = pd.factorize(values[picked])
+    if not len(uniques):
+        return np.full(n_groups, None, dtype=object)
+    rank = np.empty(len(uniques), dtype=np.int64)  # alphabetical rank of each distinct value
+    rank[np.argsort(uniques.astype(str), kind="stable")] = np.arange(len(uniques))
+    pairs, counts = np.unique(group[picked].astype(np.int64) * len(uniques) + rank[codes], return_counts=True)
+    pair_group, pair_rank = np.divmod(pairs, len(uniques))
+    best = np.lexsort((pair_rank, -counts, pair_group))  # by group, count down, then name
+    groups, first = np.unique(pair_group[best], return_index=True)
+    by_rank = np.empty(len(uniques), dtype=object)
+    by_rank[rank] = np.asarray(uniques, dtype=object)
+    out = np.full(n_groups, None, dtype=object)
+    out[groups] = by_rank[pair_rank[best][first]]
+    return out
 
 
 def _compound_table(resolved: pd.DataFrame) -> pd.DataFrame:
     """One row per compound: its structure, and the name and CAS most sources use for it.
 
-    The CAS is counted only on rows that gave the parent itself (not a salt), so that sodium
-    acetate's CAS does not become acetic acid's.
+    Compounds come sorted by id; each field is the first value given for the compound, except
+    the name and the CAS, which are the ones most rows give (ties: alphabetical). The CAS is
+    counted only on rows that gave the parent itself (not a salt), so that sodium acetate's
+    CAS does not become acetic acid's. Works on integer codes of the compound ids.
     """
     cols = ["compound_id", "name", "inchikey", "smiles", "cas", "formula", "resolved_by"]
     frame = resolved.reindex(columns=cols + ["species_smiles"])
-    table = frame.groupby("compound_id", sort=True, dropna=False)[cols[1:]].first()
-    table["name"] = _most_common(frame, "name").reindex(table.index).fillna(table["name"])
-    parent_rows = frame[frame["species_smiles"].isna() | (frame["species_smiles"] == frame["smiles"])]
-    table["cas"] = _most_common(parent_rows, "cas").reindex(table.index).fillna(table["cas"])
-    return table.reset_index()[cols]
+    group, ids = pd.factorize(frame["compound_id"].to_numpy(dtype=object), sort=True)
+    n = len(ids)
+    column = {c: frame[c].to_numpy(dtype=object) for c in cols[1:] + ["species_smiles"]}
+    table = {"compound_id": np.asarray(ids, dtype=object)}
+    by_group = np.argsort(group, kind="stable")
+    table.update({c: _first_present(column[c], by_group, group, n) for c in cols[1:]})
+    every_row = np.ones(len(frame), dtype=bool)
+    name = _most_common(column["name"], group, n, every_row)
+    species = column["species_smiles"]
+    parent_rows = pd.isna(species) | (species == column["smiles"])
+    cas = _most_common(column["cas"], group, n, parent_rows)
+    table["name"] = np.where(pd.isna(name), table["name"], name)
+    table["cas"] = np.where(pd.isna(cas), table["cas"], cas)
+    return pd.DataFrame(table)[cols]
 
 
 def _cell_facts(
@@ -562,7 +598,9 @@ def _cell_facts(
 ) -> pd.DataFrame:
     """The typed facts behind each accepted measurement's lineage steps (see :mod:`lineage`)."""
     # the table facts are looked up once per table and broadcast by the rows' table codes
-    table_codes, table_keys = pd.MultiIndex.from_frame(cells[["source_id", "table_file"]]).factorize()
+    table_codes = cells.groupby(["source_id", "table_file"], sort=False).ngroup().to_numpy()
+    _, first_row = np.unique(table_codes, return_index=True)  # the first row of each table code
+    table_keys = pd.MultiIndex.from_frame(cells[["source_id", "table_file"]].iloc[first_row])
     t = tables.set_index(["source_id", "table_file"]).reindex(table_keys)
 
     def per_table(values: list[object]) -> pd.Categorical:  # one value per table -> per row

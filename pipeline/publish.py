@@ -9,16 +9,20 @@ output serializes two builds aimed at the same file. This is the only stage that
 from __future__ import annotations
 
 import fcntl
+import logging
 import os
 from collections.abc import Iterator, Mapping
 from contextlib import contextmanager
 from pathlib import Path
+from time import perf_counter
 
 import duckdb
 import pandas as pd
 
 from pipeline import lineage
 from pipeline.schemas import published_ddl
+
+log = logging.getLogger(__name__)
 
 TABLE_ORDER = (
     "sources",
@@ -90,8 +94,10 @@ def publish(
                         con.register("cell_facts", cell_facts)
                         rows = f"{lineage.cell_steps_sql('cell_facts', 'measurements')} UNION ALL {rows}"
                     rows = f"SELECT * FROM ({rows}) ORDER BY target_id, step_no"
+                started = perf_counter()
                 con.execute(f"INSERT INTO {name} ({select}) {rows}")
                 con.unregister("incoming")
+                log.debug("publish: %s written in %.2f s", name, perf_counter() - started)
             con.execute("CHECKPOINT")
         finally:
             con.close()
