@@ -329,7 +329,7 @@ def temperature_uncertainty(
     >>> round(temperature_uncertainty(310.15, 298.15, np.diag([500.0**2, 30.0**2])), 4)
     0.0036
     """
-    x_h, x_cp = physchem._vth_terms(np.asarray(float(t_k)), np.asarray(float(t_ref_k)))
+    x_h, x_cp = physchem.van_t_hoff_coefficients(np.asarray(float(t_k)), np.asarray(float(t_ref_k)))
     jac = np.array([float(x_h), float(x_cp)])
     u = math.sqrt(max(float(jac @ np.asarray(covariance) @ jac), 0.0))
     return u * (EXTRAPOLATION_FACTOR if extrapolated else 1.0)
@@ -1015,7 +1015,7 @@ def _fit_series(recs: list[_Rec], span: tuple[float, float]) -> _Temperature | N
         worst = int(np.argmax(np.abs(fit.residuals)))
         keep[worst] = False
         refit = _fit(t[keep], p[keep])
-        x_h, x_cp = physchem._vth_terms(np.asarray(t[worst]), np.asarray(refit.t_ref_k))
+        x_h, x_cp = physchem.van_t_hoff_coefficients(np.asarray(t[worst]), np.asarray(refit.t_ref_k))
         pred = refit.pka_ref + refit.delta_h * float(x_h) + refit.delta_cp * float(x_cp)
         n_par = 3 if refit.with_heat_capacity else 2
         dof = max(int(keep.sum()) - n_par, 1)
