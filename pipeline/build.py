@@ -39,6 +39,7 @@ from pipeline import (
     identity,
     lineage,
     normalize,
+    physchem,
     provenance,
     publish,
     stage_cache,
@@ -145,21 +146,74 @@ def package_version() -> str:
         return "unknown"
 
 
+#: Settings of the ``[consolidate]`` config section: key -> (type, what it is).
+CONSOLIDATE_KEYS = {
+    "reference_temperature_k": (float, "temperature [K] all members are carried to"),
+    "reference_ionic_strength_molal": (float, "ionic strength [mol/kg] all members are carried to"),
+    "activity_model": (str, "activity model of the ionic-strength transfer"),
+}
+
+
+def _check_consolidate_section(path: Path, section: object) -> None:
+    """Refuse a ``[consolidate]`` section with unknown keys, wrong types or half a state."""
+    if not isinstance(section, dict):
+        raise DescriptorError(path, "[consolidate] must be a table of settings")
+    for key, value in section.items():
+        if key not in CONSOLIDATE_KEYS:
+            raise DescriptorError(path, f"[consolidate] unknown key {key!r}; valid keys: {', '.join(CONSOLIDATE_KEYS)}")
+        kind, meaning = CONSOLIDATE_KEYS[key]
+        ok = isinstance(value, str) if kind is str else isinstance(value, int | float) and not isinstance(value, bool)
+        if not ok:
+            raise DescriptorError(path, f"[consolidate] {key} = {value!r} must be a {'text' if kind is str else 'number'} ({meaning})")
+    t, i = section.get("reference_temperature_k"), section.get("reference_ionic_strength_molal")
+    if (t is None) != (i is None):
+        raise DescriptorError(
+            path, "[consolidate] give both reference_temperature_k and reference_ionic_strength_molal, or neither"
+        )
+    if t is not None and (t <= 0 or i < 0):
+        raise DescriptorError(path, f"[consolidate] reference state {t} K, {i} mol/kg is not physical (T > 0, I >= 0)")
+    model = section.get("activity_model")
+    if model is not None and model not in physchem.ACTIVITY_MODELS:
+        raise DescriptorError(
+            path, f"[consolidate] activity_model {model!r} is unknown; valid: {', '.join(physchem.ACTIVITY_MODELS)}"
+        )
+
+
 def load_config(path: Path | None) -> dict:
-    """Read the project config (``kaledger.toml``): ``[rules.<name>]`` tables of settings."""
+    """Read the project config (``kaledger.toml``).
+
+    ``[rules.<name>]`` tables hold rule settings; an optional ``[consolidate]`` table sets a
+    reference state (``reference_temperature_k`` and ``reference_ionic_strength_molal``,
+    optionally ``activity_model``) to which every member is carried before the consensus.
+    """
     if path is None or not path.is_file():
         return {}
     try:
         config = tomllib.loads(path.read_text(encoding="utf-8"))
     except tomllib.TOMLDecodeError as exc:
         raise DescriptorError(path, f"is not valid TOML: {exc}") from None
-    unknown = sorted(set(config) - {"rules"})
+    unknown = sorted(set(config) - {"rules", "consolidate"})
     if unknown:
-        raise DescriptorError(path, f"unknown section [{unknown[0]}]; valid sections: rules")
+        raise DescriptorError(path, f"unknown section [{unknown[0]}]; valid sections: rules, consolidate")
     bad = sorted(set(config.get("rules", {})) - set(checks.RULES))
     if bad:
         raise DescriptorError(path, f"unknown rule {bad[0]!r}; rules: {', '.join(checks.RULES)}")
+    if "consolidate" in config:
+        _check_consolidate_section(path, config["consolidate"])
     return config
+
+
+def consolidate_options(config: dict) -> dict:
+    """Keyword arguments of :func:`pipeline.consolidate.consolidate` from the config."""
+    section = config.get("consolidate", {})
+    options: dict = {}
+    if "reference_temperature_k" in section:
+        options["reference_state"] = (
+            float(section["reference_temperature_k"]), float(section["reference_ionic_strength_molal"])
+        )
+    if "activity_model" in section:
+        options["activity_model"] = section["activity_model"]
+    return options
 
 
 def load_synonyms(raw_dir: Path) -> pd.DataFrame | None:
@@ -303,6 +357,7 @@ def build(
         cons = consolidate.consolidate(
             norm.measurements, found, read.source_files,
             lineage.step_counts(norm.cell_facts, norm.measurements),
+            **consolidate_options(config),
         )
 
         counts = cons.measurements.groupby("source_id").size()

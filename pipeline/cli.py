@@ -188,7 +188,7 @@ def parser() -> argparse.ArgumentParser:
     b = sub.add_parser("build", help="ingest raw/ and publish the database")
     b.add_argument("--raw", type=Path, default=DEFAULT_RAW, help="folder of source folders (default raw/)")
     b.add_argument("--out", type=Path, default=DEFAULT_OUT, help="database file (default build/kaledger.duckdb)")
-    b.add_argument("--config", type=Path, default=Path("kaledger.toml"), help="project config (rule settings)")
+    b.add_argument("--config", type=Path, default=Path("kaledger.toml"), help="project config (rule settings, [consolidate] reference state)")
     b.add_argument("--quiet", action="store_true", help="print nothing on success")
     b.add_argument("--force", action="store_true",
                    help="rebuild and republish even when no input has changed")

@@ -2,14 +2,17 @@
 
 from __future__ import annotations
 
+import json
 import shutil
 from pathlib import Path
 
+import duckdb
 import pytest
 from conftest import DEMO_RAW, query, write_source
 
-from pipeline.build import build
+from pipeline.build import build, load_config
 from pipeline.cli import main, trace
+from pipeline.descriptor import DescriptorError
 from pipeline.publish import TABLE_ORDER
 
 
@@ -131,3 +134,51 @@ def test_check_reruns_rules_with_config(demo_db: Path, tmp_path: Path) -> None:
     config.write_text("[rules.pka_physical_bounds]\nenabled = false\n", encoding="utf-8")
     assert main(["check", "--db", str(demo_db), "--config", str(tmp_path / "absent.toml")]) == 1
     assert main(["check", "--db", str(demo_db), "--config", str(config)]) == 0
+
+
+def test_consolidate_section_carries_members_to_the_reference_state(raw_dir: Path, tmp_path: Path) -> None:
+    # acetic acid (acid form charge 0) pKa 4.756 at I = 0 (handbook value, from memory) and a
+    # concentration constant at I = 0.1 mol/kg (invented for the test); with a reference state of 298.15 K, I = 0 both are carried
+    # there (Davies) before the consensus, and the transfer is a lineage step
+    write_source(
+        raw_dir, "t1",
+        "Compound,Value,I,Type,Charge\nacetic acid,4.756,0,thermodynamic,0\nacetic acid,4.54,0.1 mol/kg,concentration,0\n",
+        extra_columns='ionic_strength = "I"\nconstant_type = "Type"\ncharge = "Charge"',
+    )
+    toml = tmp_path / "kaledger.toml"
+    toml.write_text(
+        "[consolidate]\nreference_temperature_k = 298.15\nreference_ionic_strength_molal = 0.0\n"
+        'activity_model = "davies"\n',
+        encoding="utf-8",
+    )
+    out = tmp_path / "ref.duckdb"
+    build(raw_dir, out, toml)
+    con = duckdb.connect(str(out), read_only=True)
+    try:
+        rec = con.execute("SELECT n_values, reason FROM recommended").fetchall()
+        ops = {r[0] for r in con.execute("SELECT operation FROM lineage").fetchall()}
+        (config,) = con.execute("SELECT value FROM build_info WHERE key = 'config'").fetchone()
+    finally:
+        con.close()
+    assert len(rec) == 1 and rec[0][0] == 2  # one value at the reference state, from both rows
+    assert "carried to 298.15 K" in rec[0][1]
+    assert "transfer_to_reference_state" in ops
+    assert json.loads(config)["consolidate"]["reference_temperature_k"] == 298.15
+
+
+@pytest.mark.parametrize(
+    ("text", "message"),
+    [
+        ("[consolidate]\nreference_temperature_k = 298.15\n", "give both"),
+        ("[consolidate]\nreference_temperature_k = '25 C'\nreference_ionic_strength_molal = 0\n", "must be a number"),
+        ("[consolidate]\nreference_temperature_k = -1\nreference_ionic_strength_molal = 0\n", "not physical"),
+        ("[consolidate]\nactivity_model = 'guess'\n", "valid: davies"),
+        ("[consolidate]\ntemperature = 298.15\n", "valid keys: reference_temperature_k"),
+    ],
+)
+def test_consolidate_section_refuses_bad_settings(tmp_path: Path, text: str, message: str) -> None:
+    toml = tmp_path / "kaledger.toml"
+    toml.write_text(text, encoding="utf-8")
+    with pytest.raises(DescriptorError, match=message) as info:
+        load_config(toml)
+    assert str(toml) in str(info.value)
