@@ -38,7 +38,6 @@ from pipeline import (
     consolidate,
     identity,
     lineage,
-    normalize,
     physchem,
     provenance,
     publish,
@@ -354,10 +353,9 @@ def build(
         found = pd.concat([rule_findings, norm.identity_findings], ignore_index=True)
         stages.begin("consolidate")
         _pause_for_test("consolidate")
+        cell_steps = lineage.step_counts(norm.cell_facts, norm.measurements)
         cons = consolidate.consolidate(
-            norm.measurements, found, read.source_files,
-            lineage.step_counts(norm.cell_facts, norm.measurements),
-            **consolidate_options(config),
+            norm.measurements, found, read.source_files, cell_steps, **consolidate_options(config)
         )
 
         counts = cons.measurements.groupby("source_id").size()
@@ -369,7 +367,7 @@ def build(
             "schema_version": SCHEMA_VERSION,
             "package_version": package_version(),
             "built_at": started.strftime("%Y-%m-%dT%H:%M:%SZ"),
-            "pkw_release": normalize.PKW_RELEASE,
+            "pkw_release": physchem.PKW_RELEASE,
             "config": json.dumps(config, sort_keys=True),
             "input_files": json.dumps(
                 dict(zip(sources["file"], sources["file_sha256"], strict=True)), sort_keys=True
@@ -385,7 +383,7 @@ def build(
             {"sources": sources, "compounds": norm.compounds, "measurements": cons.measurements,
              "rejects": norm.rejects, "findings": cons.findings, "recommended": cons.recommended,
              "lineage": cons.lineage, "cell_facts": norm.cell_facts},
-            raw_dir, config_path,
+            raw_dir, config_path, cell_steps,
         ))
         build_info = pd.DataFrame({"key": list(info), "value": list(info.values())})
         stages.begin("publish")

@@ -89,6 +89,10 @@ _INPUTS = {
 }
 
 
+def _cells(facts: str, measurements: str) -> str:
+    return "WITH cells AS (" + _CELLS.format(facts=facts, measurements=measurements) + ") "
+
+
 def cell_steps_sql(facts: str, measurements: str) -> str:
     """SQL giving the lineage rows of every measurement from the two named relations.
 
@@ -105,38 +109,26 @@ def cell_steps_sql(facts: str, measurements: str) -> str:
             f"{parameters}::VARCHAR AS parameters, {_INPUTS[inputs]} AS inputs "
             f"FROM cells WHERE {condition}"
         )
-    cells = _CELLS.format(facts=facts, measurements=measurements)
-    return f"WITH cells AS ({cells}) " + " UNION ALL ".join(selects)
+    return _cells(facts, measurements) + " UNION ALL ".join(selects)
+
+
+def step_counts_sql(facts: str, measurements: str) -> str:
+    """SQL giving ``value_id, steps``: how many rows :func:`cell_steps_sql` writes for each
+    measurement (the same step conditions, no JSON written)."""
+    total = " + ".join(f"({condition})::INTEGER" for _, condition, _, _ in _STEPS)
+    return _cells(facts, measurements) + f"SELECT value_id, {total} AS steps FROM cells"
 
 
 def step_counts(facts: pd.DataFrame, measurements: pd.DataFrame) -> pd.Series:
     """Number of cell steps of each measurement (by ``value_id``), without writing them.
 
-    Consolidate numbers its own steps after these; publish checks the written count.
-
-    Examples
-    --------
-    A Ka read from its cell with no defaults has three steps (read, parse, K to pK):
-
-    >>> facts = pd.DataFrame({"value_id": ["kv-1"], "quantity_default": [None],
-    ...     "temperature_default": [None], "ionic_strength_default": [None],
-    ...     "ionic_strength_was_molar": [False]})
-    >>> m = pd.DataFrame({"value_id": ["kv-1"], "quantity_reported": ["Ka"], "pkw_used": [float("nan")]})
-    >>> step_counts(facts, m).tolist()
-    [3]
+    Consolidate numbers its own steps after these; the build manifest counts them.
     """
-    quantity = pd.Series(measurements["quantity_reported"].to_numpy(), index=measurements["value_id"])
-    pkw = pd.Series(measurements["pkw_used"].to_numpy(dtype=float), index=measurements["value_id"])
-    ids = facts["value_id"]
-    any_default = facts[["quantity_default", "temperature_default", "ionic_strength_default"]].notna().any(axis=1)
-    counts = (
-        2
-        + any_default.to_numpy(dtype=int)
-        + facts["ionic_strength_was_molar"].to_numpy(dtype=int)
-        + quantity.reindex(ids).isin(["Ka", "Kb"]).to_numpy(dtype=int)
-        + pkw.reindex(ids).notna().to_numpy(dtype=int)
-    )
-    return pd.Series(counts, index=ids.to_numpy(), dtype="int64")
+    with duckdb.connect() as con:
+        con.register("cell_facts", facts)
+        con.register("measurement_rows", measurements[list(MEASUREMENT_COLUMNS)])
+        counts = con.execute(step_counts_sql("cell_facts", "measurement_rows")).df()
+    return pd.Series(counts["steps"].to_numpy(dtype="int64"), index=counts["value_id"].to_numpy(dtype=object))
 
 
 def measurement_lineage(facts: pd.DataFrame, measurements: pd.DataFrame) -> pd.DataFrame:

@@ -27,8 +27,6 @@ from pipeline import identity, lineage, parse, physchem
 from pipeline.schemas.tables import CELL_FACTS, MEASUREMENTS, REJECTS
 
 CONSTANT_TYPES = ("thermodynamic", "concentration", "mixed")
-#: Release of the water-ionization formulation behind :func:`physchem.pkw` (iapws package).
-PKW_RELEASE = physchem.PKW_RELEASE
 
 
 @dataclass(frozen=True)
@@ -641,8 +639,6 @@ def _text_categorical(values: pd.Categorical | pd.Series) -> pd.Categorical:
 
 def concat_cell_facts(parts: list[pd.DataFrame]) -> pd.DataFrame:
     """Join cell-fact frames, keeping the text facts categorical (plain concat would not)."""
-    if not parts:
-        return CELL_FACTS.validate(pd.DataFrame({c: pd.Series(dtype=str(s.dtype)) for c, s in CELL_FACTS.columns.items()}))
     joined = pd.concat(parts, ignore_index=True)
     for column, spec in CELL_FACTS.columns.items():
         if str(spec.dtype) == "category":

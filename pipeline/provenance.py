@@ -69,7 +69,6 @@ import license_expression
 import pandas as pd
 from prov.model import ProvDocument
 
-from pipeline import lineage as lineage_module
 from pipeline.publish import TABLE_ORDER, open_database
 from pipeline.schemas import published_ddl
 
@@ -477,6 +476,7 @@ def build_manifest(
     tables: Mapping[str, pd.DataFrame],
     raw_dir: Path | str,
     config_path: Path | str | None = None,
+    cell_steps: pd.Series | None = None,
 ) -> dict[str, str]:
     """Manifest entries for ``build_info``, beside the keys ``build.py`` writes itself.
 
@@ -486,6 +486,8 @@ def build_manifest(
         ``findings``, ``recommended``, ``lineage``, ``compounds``); with normalize's
         ``cell_facts`` too, ``lineage`` holds only the steps after the measurements' own
         (which publish expands from the facts)
+    cell_steps : with ``cell_facts``, each measurement's number of those steps
+        (:func:`pipeline.lineage.step_counts`, as the build computed them for consolidate)
     raw_dir : the folder of source folders (for the descriptors and ``synonyms.csv``)
     config_path : the project config given to the build, if any
 
@@ -516,9 +518,9 @@ def build_manifest(
     m, rejects, findings = tables["measurements"], tables["rejects"], tables["findings"]
     rec, lineage = tables["recommended"], tables["lineage"]
     is_rec = lineage["operation"].isin(["consensus", "recognised_as_copy"])  # added by consolidate
-    cell_steps = int((~is_rec).sum())
-    if facts is not None:
-        cell_steps += int(lineage_module.step_counts(facts, m).sum())
+    normalize_steps = int((~is_rec).sum())
+    if cell_steps is not None:
+        normalize_steps += int(cell_steps.sum())
     stage_counts = {
         "ingest": {"sources": len(sources), "rows_read": int(sources["row_count"].sum())},
         "normalize": {
@@ -526,7 +528,7 @@ def build_manifest(
             "rejected_rows": int(rejects[["source_id", "source_row"]].drop_duplicates().shape[0]),
             "rejected_cells": len(rejects),
             "compounds": len(tables["compounds"]),
-            "lineage_steps": cell_steps,
+            "lineage_steps": normalize_steps,
         },
         "validate": {
             "findings": len(findings),
@@ -541,7 +543,7 @@ def build_manifest(
             "lineage_steps": int(is_rec.sum()),
         },
         "publish": {"tables": {
-            name: cell_steps + int(is_rec.sum()) if name == "lineage" else len(tables[name])
+            name: normalize_steps + int(is_rec.sum()) if name == "lineage" else len(tables[name])
             for name in TABLE_ORDER if name in tables
         }},
     }

@@ -75,8 +75,6 @@ def publish(
     if missing:
         raise PublishError(f"cannot publish: table {missing[0]!r} was not built")
     expected = {name: len(frame) for name, frame in tables.items()}
-    if cell_facts is not None:
-        expected["lineage"] += int(lineage.step_counts(cell_facts, tables["measurements"]).sum())
     out_path.parent.mkdir(parents=True, exist_ok=True)
     tmp = out_path.with_name(f".{out_path.name}.tmp-{os.getpid()}")
     tmp.unlink(missing_ok=True)
@@ -92,6 +90,10 @@ def publish(
                 if name == "lineage":
                     if cell_facts is not None:
                         con.register("cell_facts", cell_facts)
+                        (steps,) = con.execute(
+                            f"SELECT coalesce(sum(steps), 0) FROM ({lineage.step_counts_sql('cell_facts', 'measurements')})"
+                        ).fetchone()
+                        expected["lineage"] += int(steps)
                         rows = f"{lineage.cell_steps_sql('cell_facts', 'measurements')} UNION ALL {rows}"
                     rows = f"SELECT * FROM ({rows}) ORDER BY target_id, step_no"
                 started = perf_counter()

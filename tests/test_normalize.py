@@ -9,6 +9,7 @@ import numpy as np
 import pytest
 from conftest import write_source
 
+from pipeline import lineage
 from pipeline.descriptor import load_descriptor
 from pipeline.ingest import ingest
 from pipeline.normalize import make_value_ids, normalize
@@ -112,3 +113,19 @@ def test_salt_row_keeps_its_species_and_maps_to_the_parent(raw_dir: Path) -> Non
     m = out.measurements.iloc[0]
     assert m["compound_id"] == "QTBSBXVTEAMEQO-UHFFFAOYSA-N"
     assert m["species_smiles"] == "CC(=O)[O-].[Na+]"
+
+
+def test_step_counts_match_the_steps_written(raw_dir: Path) -> None:
+    # every optional step once: defaults (quantity, temperature), K -> pK, pKb -> pKa, and
+    # mol/L -> mol/kg; the counts consolidate and the manifest use are what publish writes
+    folder = write_source(
+        raw_dir, "t1",
+        "Compound,Value,Q,I,Type\nacetic acid,1.75e-5,Ka,0,\nammonia,4.75,pKb,0.1 mol/L,mixed\nformic acid,3.75,,0,\n",
+        extra_columns='quantity = "Q"\nionic_strength = "I"\nconstant_type = "Type"',
+        quantity="pKa",
+    )
+    _, out = _run(folder)
+    written = out.lineage.groupby("target_id").size()
+    counted = lineage.step_counts(out.cell_facts, out.measurements)
+    assert len(counted) == len(out.measurements) == 3
+    assert counted.sort_index().to_dict() == written.sort_index().to_dict()
