@@ -3,6 +3,8 @@
 Steps, each in its own child process (so its peak memory is its own):
 
 (a)  floor: DuckDB ``read_csv`` (all columns as text) of every data file into a table;
+(w)  output floor: copy every table of the published file (b) into a new file with the same
+     DDL, in DuckDB alone: the bare cost of writing what the build publishes, no computing;
 (b0) cold full build: no ``build/cache`` at all (RDKit standardizes every structure);
 (b)  full build with a warm identity cache only (kept per-source stage output deleted):
      what a steward's first build after adding every source anew costs on a used machine;
@@ -11,7 +13,7 @@ Steps, each in its own child process (so its peak memory is its own):
      stage output, the whole-set stages and publish run again);
 (d)  rebuild after one cell of one source changed.
 
-Prints seconds, the ratios (b)/(a), (b0)/(a), (c)/(b), (c')/(b), (d)/(b), rows per second and
+Prints seconds, the ratios (b)/(a), (w)/(a), (b)/(a+w), (b0)/(a), (c)/(b), (c')/(b), (d)/(b), rows per second and
 each step's peak resident memory (``ru_maxrss`` of the child and of its own children, e.g.
 RDKit workers). Targets (issue 10; printed, not asserted): (b)/(a) <= 10 at 1M rows,
 (c)/(b) <= 0.1, peak memory < 4 GiB at 1M rows.
@@ -42,7 +44,7 @@ sys.path.insert(0, str(ROOT / "bench"))
 
 from generate_sources import generate, parse_rows  # noqa: E402
 
-STEPS = ("floor", "cold", "full", "unchanged", "forced", "one_changed")
+STEPS = ("floor", "cold", "full", "output_floor", "unchanged", "forced", "one_changed")
 
 
 def _data_files(raw: Path) -> list[Path]:
@@ -64,6 +66,28 @@ def _floor(raw: Path) -> int:
         )
         rows += con.execute(f"SELECT count(*) FROM t{i}").fetchone()[0]
     con.close()
+    return rows
+
+
+def _output_floor(out: Path) -> int:
+    """Write the tables of the published file ``out`` into a new file with the published DDL."""
+    import duckdb
+    from pipeline.schemas import published_ddl
+
+    copy = out.with_name("output-floor.duckdb")
+    copy.unlink(missing_ok=True)
+    con = duckdb.connect(str(copy))
+    con.execute(published_ddl())
+    con.execute("ATTACH ? AS published (READ_ONLY)", [str(out)])
+    tables = [r[0] for r in con.execute(
+        "SELECT table_name FROM duckdb_tables() WHERE database_name = 'published'").fetchall()]
+    rows = 0
+    for table in tables:
+        con.execute(f"INSERT INTO {table} SELECT * FROM published.{table}")
+        rows += con.execute(f"SELECT count(*) FROM {table}").fetchone()[0]
+    con.execute("CHECKPOINT")
+    con.close()
+    copy.unlink()
     return rows
 
 
@@ -89,6 +113,8 @@ def _child(step: str, raw: Path, out: Path, profile: str | None) -> None:
     detail: dict = {"stages": stage_seconds}
     if step == "floor":
         detail["rows"] = _floor(raw)
+    elif step == "output_floor":
+        detail["rows"] = _output_floor(out)
     else:
         kwargs = {"force": True} if step == "forced" else {}
         if profile and step == "full":
@@ -162,6 +188,7 @@ def main(argv: list[str] | None = None) -> int:
     shutil.rmtree(cache / "sources", ignore_errors=True)
     out.unlink()
     r["full"] = _run("full", raw, out, args.profile)  # identity cache warm, no kept stages
+    r["output_floor"] = _run("output_floor", raw, out)
     r["unchanged"] = _run("unchanged", raw, out)
     r["forced"] = _run("forced", raw, out)
     path, old = _change_one_cell(raw)
@@ -182,6 +209,7 @@ def main(argv: list[str] | None = None) -> int:
         "floor": "(a)  DuckDB read_csv floor",
         "cold": "(b0) full build, cold caches",
         "full": "(b)  full build, warm identity cache",
+        "output_floor": "(w)  output floor: copy published tables",
         "unchanged": "(c)  rebuild, nothing changed",
         "forced": "(c') forced rebuild, all kept",
         "one_changed": "(d)  rebuild, one source changed",
@@ -193,6 +221,9 @@ def main(argv: list[str] | None = None) -> int:
               + (f"   [{stages}]" if stages else ""))
     print()
     print(f"(b)/(a)  = {b / a:6.2f}   target <= 10 at 1M rows")
+    w = r["output_floor"]["seconds"]
+    print(f"(w)/(a)  = {w / a:6.2f}   writing the output alone ({r['output_floor']['rows']:,} rows in all tables)")
+    print(f"(b)/(a+w) = {b / (a + w):5.2f}   the build against reading the input plus writing the output")
     print(f"(b0)/(a) = {r['cold']['seconds'] / a:6.2f}")
     print(f"(c)/(b)  = {r['unchanged']['seconds'] / b:6.3f}   target <= 0.1")
     print(f"(c')/(b) = {r['forced']['seconds'] / b:6.3f}")
