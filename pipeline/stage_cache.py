@@ -23,6 +23,7 @@ import os
 import shutil
 import tempfile
 from collections.abc import Callable
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -225,13 +226,19 @@ def ingest_and_normalize(
         tables = json.loads(read.tables.to_json(orient="records"))
         if between is not None:
             between()
-        for source, source_file in zip(todo, files, strict=True):
-            cells = read.raw_cells[read.raw_cells["source_id"] == source.id]
-            own_tables = [t for t in tables if t["source_id"] == source.id]
-            part = normalize.normalize_rows(cells, read.tables, synonyms, identity_cache)
-            entries[source.id] = CachedSource(source_file, own_tables, part)
-            if cache is not None:
-                cache.store(source.id, keys[source.id], entries[source.id])
+        # one writer thread keeps each normalized source while the next is normalized (DuckDB
+        # writes the Parquet files on the build's second core); errors surface at result()
+        with ThreadPoolExecutor(max_workers=1, thread_name_prefix="stage-cache") as writer:
+            stored: list[Future[None]] = []
+            for source, source_file in zip(todo, files, strict=True):
+                cells = read.raw_cells[read.raw_cells["source_id"] == source.id]
+                own_tables = [t for t in tables if t["source_id"] == source.id]
+                part = normalize.normalize_rows(cells, read.tables, synonyms, identity_cache)
+                entries[source.id] = CachedSource(source_file, own_tables, part)
+                if cache is not None:
+                    stored.append(writer.submit(cache.store, source.id, keys[source.id], entries[source.id]))
+            for done in stored:
+                done.result()
     elif between is not None:
         between()
     ordered = [entries[s.id] for s in descriptors]
