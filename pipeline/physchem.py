@@ -538,7 +538,8 @@ def sit_coefficients() -> tuple[SitCoefficient, ...]:
     .. [1] NEA-TDB Appendix B tables, e.g. Grenthe, I. et al. Chemical
        Thermodynamics of Uranium; NEA/Elsevier, 1992, and Lemire, R. J. et al.
        Chemical Thermodynamics of Iron, Part 1; NEA/OECD, 2013. Values in the
-       shipped file are marked "from memory" in its source column.
+       shipped file were checked against ThermoChimie copies (PHREEQC sit.dat);
+       its source column says, per row, what agreed or is "from memory".
 
     Examples
     --------

@@ -237,7 +237,8 @@ def test_pkw_at_ionic_strength_literature_magnitude() -> None:
 
 
 def test_pkw_at_ionic_strength_sit() -> None:
-    """SIT pKw_c in NaCl: pKw - 2D + (ε(H+,Cl-) + ε(Na+,OH-)) I (NEA-TDB form, ε from memory)."""
+    """SIT pKw_c in NaCl: pKw - 2D + (ε(H+,Cl-) + ε(Na+,OH-)) I (NEA-TDB form; ε 0.12 and 0.04 as in
+    ThermoChimie v12a sit.dat)."""
     i = 1.0
     a = float(pc.debye_huckel_a(298.15))
     d = a * math.sqrt(i) / (1 + 1.5 * math.sqrt(i))
@@ -252,11 +253,12 @@ def test_pkw_at_ionic_strength_sit() -> None:
 
 
 def test_sit_file_carries_provenance() -> None:
-    """The shipped table names its published source (NEA-TDB; Grenthe et al.; Lemire et al.)."""
+    """The shipped table names its published source (NEA-TDB; Grenthe et al.; Lemire et al.) and
+    the ThermoChimie copies (PHREEQC sit.dat files) its values were checked against."""
     text = resources.files("pipeline").joinpath("data/sit_epsilon.csv").read_text("utf-8")
     header = [line for line in text.splitlines() if line.startswith("#")]
     joined = " ".join(header)
-    for word in ("NEA-TDB", "Grenthe", "Lemire", "from memory"):
+    for word in ("NEA-TDB", "Grenthe", "Lemire", "ThermoChimie", "usgs-coupled/phreeqc3", "from memory"):
         assert word in joined
     cols = next(line for line in text.splitlines() if not line.startswith("#"))
     assert cols.split(",") == [
@@ -273,12 +275,16 @@ def test_sit_file_checksum() -> None:
     assert_allclose(sum(r.uncertainty_kg_mol for r in rows), 0.69, atol=1e-9)
     assert all(r.uncertainty_kg_mol >= 0 for r in rows)
     assert all(r.temperature_k == 298.15 for r in rows)
-    assert all(r.source == "from memory" and r.reference for r in rows)
+    assert all(r.source.startswith(("checked: ", "from memory")) and r.reference for r in rows)
+    # 30 values agree with a ThermoChimie copy (NEA-TDB-derived); Na+/acetate is from memory
+    assert sum(r.source.startswith("checked: ") for r in rows) == 30
+    assert [r.species_2 for r in rows if r.source.startswith("from memory")] == ["CH3COO-"]
     assert len({frozenset((r.species_1, r.species_2)) for r in rows}) == len(rows)
 
 
 def test_sit_epsilon_lookup_symmetric_and_unknown() -> None:
-    """ε(j,k) = ε(k,j); ε(H+, Cl-) = 0.12 kg/mol (NEA-TDB, from memory); unknown pair lists pairs."""
+    """ε(j,k) = ε(k,j); ε(H+, Cl-) = 0.12 kg/mol (NEA-TDB, as in ThermoChimie v12a sit.dat); unknown
+    pair lists pairs."""
     assert pc.sit_epsilon("H+", "Cl-") == pc.sit_epsilon("Cl-", "H+") == 0.12
     with pytest.raises(KeyError, match="tabulated pairs"):
         pc.sit_epsilon("Cs+", "I-")
