@@ -11,9 +11,9 @@ Activity model and honest tolerance
 The pH(S) values of the IUPAC primary standards [1]_ rest on the Bates-Guggenheim convention
 for γ(Cl-). The suite computes the conventional pH = -log10(γ_H m_H) with the same
 Bates-Guggenheim form for every ion (``"bates_guggenheim"``), and reports the Davies result
-beside it. With the demo library's recommended constants (phthalic 2.943 / 5.431,
+beside it. With the demo library's recommended constants (phthalic 2.950 / 5.4095,
 phosphoric 2.149 / 7.199 / 12.35, boric 9.2385, carbonic 6.3505 / 10.3295) the computed values
-differ from pH(S) by (Bates-Guggenheim / Davies): phthalate +0.016 / +0.015, phosphate +0.006 /
+differ from pH(S) by (Bates-Guggenheim / Davies): phthalate +0.008 / +0.008, phosphate +0.006 /
 +0.012, borax -0.002 / -0.002, carbonate -0.015 / -0.008. Ion pairing (K+, Na+ with the buffer anions) and the
 single-ion convention are not modelled, so about 0.015 is the model's own floor: a tolerance of
 0.02, as the issue asks, is honest but tight; 0.01 would fail the standards for reasons of the
