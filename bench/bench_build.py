@@ -209,7 +209,7 @@ def main(argv: list[str] | None = None) -> int:
         "floor": "(a)  DuckDB read_csv floor",
         "cold": "(b0) full build, cold caches",
         "full": "(b)  full build, warm identity cache",
-        "output_floor": "(w)  output floor: copy published tables",
+        "output_floor": "(w)  DuckDB copy of published tables",
         "unchanged": "(c)  rebuild, nothing changed",
         "forced": "(c') forced rebuild, all kept",
         "one_changed": "(d)  rebuild, one source changed",
