@@ -68,7 +68,7 @@ def test_demo_fires_the_rules(demo_db: Path) -> None:
 
 
 def test_boric_acid_consensus_ignores_the_outlier(demo_db: Path) -> None:
-    # boric acid 9.237 (from memory) and 9.24 agree; the 9.5 of one compilation is flagged
+    # boric acid 9.237 (NIST46 in PHREEQC minteq.v4.dat: 9.236) and 9.24 agree; the 9.5 of one compilation is flagged
     (pka, category) = query(
         demo_db,
         "SELECT pka, category FROM recommended WHERE compound_id = 'KGBXLFKZBHKPEV-UHFFFAOYSA-N' "

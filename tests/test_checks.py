@@ -243,7 +243,7 @@ def test_ionic_strength_unknown_model_lists_choices() -> None:
 
 
 def test_source_disagreement_boric_acid_outlier() -> None:
-    # boric acid 9.237 (from memory), 9.24 ± 0.01, and 9.5 from an old course handout (demo defect C8)
+    # boric acid 9.237 (NIST46 in PHREEQC minteq.v4.dat: 9.236), 9.24 ± 0.01, and 9.5 from an old course handout (demo defect C8)
     m = make_measurements([
         {"compound_id": "boric", "pka": 9.237, "source_id": "a"},
         {"compound_id": "boric", "pka": 9.24, "pka_uncertainty": 0.01, "source_id": "b"},

@@ -97,7 +97,7 @@ def test_unequal_weights_by_hand() -> None:
 
 
 def test_gross_outlier_is_left_out_and_flagged() -> None:
-    # boric acid 9.237 (from memory), 9.24 and 9.235 agree; 9.5 from an old course handout does not
+    # boric acid 9.237 (NIST46 in PHREEQC minteq.v4.dat: 9.236), 9.24 and 9.235 agree; 9.5 from an old course handout does not
     m, result = _run([
         {"compound_id": "boric", "pka": 9.237, "source_id": "comp1"},
         {"compound_id": "boric", "pka": 9.24, "source_id": "lab"},

@@ -28,7 +28,7 @@ from pipeline.equilibrium import (
 )
 from pipeline.physchem import PhysChemRangeError, debye_huckel_a, pkw
 
-ACETIC_PKA = 4.756  # Harned & Ehlers 1933 (from memory, REFERENCE-VALUES status M)
+ACETIC_PKA = 4.756  # Harned & Ehlers 1933 (from memory; NIST46 in PHREEQC minteq.v4.dat: 4.757)
 
 
 def test_strong_acid_ideal() -> None:

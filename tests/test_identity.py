@@ -458,7 +458,7 @@ def step_frame(
 
 
 def test_infer_steps_ranks_unnumbered_polyprotic_values() -> None:
-    # phosphoric acid pK1/pK2/pK3 = 2.148 / 7.198 / 12.35 (REFERENCE-VALUES, from memory)
+    # phosphoric acid pK1/pK2/pK3 = 2.148 / 7.198 / 12.35 (pK1, pK2 as in NIST46 in PHREEQC minteq.v4.dat; pK3 from memory)
     f = step_frame(["P"] * 3, [None] * 3, [7.198, 12.35, 2.148], ["s1"] * 3)
     out = infer_steps(f)
     assert out["step"].tolist() == [2, 3, 1]

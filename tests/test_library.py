@@ -322,7 +322,7 @@ def test_cationic_acid_is_insensitive_to_ionic_strength_under_davies(lib: Librar
 def test_pkas_lists_every_step(lib: Library) -> None:
     results = lib.pkas("phosphoric acid")
     assert [r.step for r in results] == [1, 2, 3]
-    # phosphoric acid 2.148 / 7.198 / 12.35 (from memory), library medians
+    # phosphoric acid 2.148 / 7.198 / 12.35 (pK1, pK2 as in NIST46 in PHREEQC minteq.v4.dat; pK3 from memory), library medians
     np.testing.assert_allclose([r.pka for r in results], [2.148, 7.198, 12.35], atol=2e-3)
 
 
@@ -424,7 +424,7 @@ def test_cli_lookup_json_every_step(demo_db: Path, capsys: pytest.CaptureFixture
     assert main(["lookup", "phosphoric acid", "--json", "--db", str(demo_db)]) == 0
     rows = json.loads(capsys.readouterr().out)
     assert [r["step"] for r in rows] == [1, 2, 3]
-    assert rows[1]["pka"] == pytest.approx(7.198, abs=2e-3)  # from memory (REFERENCE-VALUES M)
+    assert rows[1]["pka"] == pytest.approx(7.198, abs=2e-3)  # as in NIST46 in PHREEQC minteq.v4.dat
 
 
 def test_cli_lookup_errors(demo_db: Path, capsys: pytest.CaptureFixture[str]) -> None:

@@ -187,7 +187,7 @@ def test_sit_debye_term_at_0_1() -> None:
 
 def test_sit_h_in_naclo4() -> None:
     """NEA-TDB SIT: log γ(H+) in 1 mol/kg NaClO4 = -0.509/2.5 + ε(H+, ClO4-) with
-    ε = 0.14 kg/mol (NEA-TDB App. B, from memory) -> -0.0636 (K)."""
+    ε = 0.14 kg/mol (NEA-TDB App. B; as in ThermoChimie v12a sit.dat) -> -0.0636 (K)."""
     got = pc.log_activity_coefficient(
         1, 1.0, model="sit", ion="H+", medium="NaClO4", dh_a=0.509
     )
