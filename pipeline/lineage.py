@@ -98,18 +98,26 @@ def cell_steps_sql(facts: str, measurements: str) -> str:
 
     ``facts``: cell facts (:data:`~pipeline.schemas.tables.CELL_FACTS`); ``measurements``: the
     measurements (at least :data:`MEASUREMENT_COLUMNS`). Columns as in the published
-    ``lineage`` table; no order.
+    ``lineage`` table, in order of target and step: the one-row-per-measurement cells are
+    sorted and each is then unnested into its steps, which keeps a measurement's steps
+    together at a fraction of the memory of sorting the expanded rows (4-5 per measurement).
+    The order is what lets a trace query skip the rest of the table (DuckDB zone maps).
     """
     flags = [condition for _, condition, _, _ in _STEPS]
-    selects = []
+    entries = []
     for i, (operation, condition, parameters, inputs) in enumerate(_STEPS):
         before = " + ".join(f"({c})::INTEGER" for c in flags[:i]) or "0"
-        selects.append(
-            f"SELECT value_id AS target_id, 1 + {before} AS step_no, '{operation}' AS operation, "
-            f"{parameters}::VARCHAR AS parameters, {_INPUTS[inputs]} AS inputs "
-            f"FROM cells WHERE {condition}"
+        entries.append(
+            f"CASE WHEN {condition} THEN {{'step_no': (1 + {before})::BIGINT, "
+            f"'operation': '{operation}', 'parameters': {parameters}::VARCHAR, "
+            f"'inputs': {_INPUTS[inputs]}}} END"
         )
-    return _cells(facts, measurements) + " UNION ALL ".join(selects)
+    steps = f"list_filter([{', '.join(entries)}], lambda s: s IS NOT NULL)"
+    return (
+        _cells(facts, measurements)
+        + f", listed AS (SELECT value_id, {steps} AS steps FROM cells ORDER BY value_id) "
+        + "SELECT value_id AS target_id, unnest(steps, recursive := true) FROM listed"
+    )
 
 
 def step_counts_sql(facts: str, measurements: str) -> str:
@@ -140,7 +148,7 @@ def measurement_lineage(facts: pd.DataFrame, measurements: pd.DataFrame) -> pd.D
         con.register("cell_facts", facts)
         con.register("measurement_rows", measurements[list(MEASUREMENT_COLUMNS)])
         frame = con.execute(
-            cell_steps_sql("cell_facts", "measurement_rows") + " ORDER BY target_id, step_no"
+            f"SELECT * FROM ({cell_steps_sql('cell_facts', 'measurement_rows')}) ORDER BY target_id, step_no"
         ).df()
     frame["step_no"] = frame["step_no"].astype("int64")
     return LINEAGE.validate(frame)

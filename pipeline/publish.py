@@ -67,8 +67,9 @@ def publish(
     ``tables`` must hold every table of the published DDL (``schemas/kaledger.sql``); columns
     are matched by name. With ``cell_facts`` (normalize's, one row per measurement), the
     measurements' own lineage steps are expanded from them inside the file
-    (:func:`pipeline.lineage.cell_steps_sql`) and written with ``tables["lineage"]`` (then the
-    later steps only, e.g. consolidate's), all ordered by target and step.
+    (:func:`pipeline.lineage.cell_steps_sql`) and written before ``tables["lineage"]`` (then the
+    later steps only, e.g. consolidate's). Each of the two runs is ordered by target and step,
+    so a trace query reads one stretch of each.
     """
     out_path = Path(out_path)
     missing = [t for t in TABLE_ORDER if t not in tables]
@@ -87,16 +88,17 @@ def publish(
                 columns = [r[0] for r in con.execute(f"DESCRIBE {name}").fetchall()]
                 select = ", ".join(f'"{c}"' for c in columns)
                 rows = f"SELECT {select} FROM incoming"
+                started = perf_counter()
                 if name == "lineage":
-                    if cell_facts is not None:
+                    if cell_facts is not None:  # the cell steps first, already in target order
                         con.register("cell_facts", cell_facts)
                         (steps,) = con.execute(
                             f"SELECT coalesce(sum(steps), 0) FROM ({lineage.step_counts_sql('cell_facts', 'measurements')})"
                         ).fetchone()
                         expected["lineage"] += int(steps)
-                        rows = f"{lineage.cell_steps_sql('cell_facts', 'measurements')} UNION ALL {rows}"
-                    rows = f"SELECT * FROM ({rows}) ORDER BY target_id, step_no"
-                started = perf_counter()
+                        cells = lineage.cell_steps_sql("cell_facts", "measurements")
+                        con.execute(f"INSERT INTO lineage ({select}) SELECT {select} FROM ({cells})")
+                    rows += " ORDER BY target_id, step_no"
                 con.execute(f"INSERT INTO {name} ({select}) {rows}")
                 con.unregister("incoming")
                 log.debug("publish: %s written in %.2f s", name, perf_counter() - started)

@@ -96,6 +96,18 @@ def test_trace_of_an_unknown_id_names_both_id_kinds(demo_db: Path, capsys: pytes
 # ---------------------------------------------------------------------------- build manifest
 
 
+def test_lineage_is_stored_in_two_runs_each_in_target_order(demo_db: Path) -> None:
+    # Publish writes the cell steps, then the later steps, each run sorted by (target, step),
+    # so a trace query reads one stretch of each run; the only break is where the runs meet.
+    # Common practice (sorted storage for range pruning), not a published value.
+    ((breaks, rows),) = query(demo_db, """
+        SELECT count(*) FILTER (WHERE prev_t > target_id OR (prev_t = target_id AND prev_s >= step_no)),
+               count(*)
+        FROM (SELECT target_id, step_no, lag(target_id) OVER (ORDER BY rowid) AS prev_t,
+                     lag(step_no) OVER (ORDER BY rowid) AS prev_s FROM lineage)""")
+    assert rows > 0 and breaks <= 1
+
+
 def test_build_manifest_hashes_every_input_and_counts_every_stage(demo_db: Path) -> None:
     info = dict(query(demo_db, "SELECT key, value FROM build_info"))
     assert info["schema_version"] == "1" and info["package_version"]
