@@ -105,8 +105,11 @@ def _child(step: str, raw: Path, out: Path, profile: str | None) -> None:
             m = re.match(r"(\w+) done in ([0-9.]+) s", record.getMessage())
             if m:
                 stage_seconds[m.group(1)] = float(m.group(2))
+            m = re.match(r"read \d+ sources in ([0-9.]+) s", record.getMessage())
+            if m:  # reading happens source by source within normalize
+                stage_seconds["read, within normalize"] = float(m.group(1))
 
-    logger = logging.getLogger("pipeline.build")
+    logger = logging.getLogger("pipeline")
     logger.setLevel(logging.INFO)
     logger.addHandler(StageTimes())
     start = time.perf_counter()

@@ -11,6 +11,7 @@ import hashlib
 import json
 import logging
 import os
+import shutil
 import sys
 import time
 import tomllib
@@ -242,7 +243,10 @@ def _pause_for_test(stage: str) -> None:
 def _remove_stale_temporaries(out_path: Path) -> None:
     """Delete temporaries of earlier killed builds (safe: the caller holds the build lock)."""
     for stale in out_path.parent.glob(f".{out_path.name}.tmp-*"):
-        stale.unlink(missing_ok=True)
+        if stale.is_dir():  # DuckDB's spill folder of a killed publish
+            shutil.rmtree(stale, ignore_errors=True)
+        else:
+            stale.unlink(missing_ok=True)
 
 
 def _input_fingerprint(keys: dict[str, str], config: dict) -> str:

@@ -11,6 +11,7 @@ from __future__ import annotations
 import fcntl
 import logging
 import os
+import shutil
 from collections.abc import Iterator, Mapping
 from contextlib import contextmanager
 from pathlib import Path
@@ -59,6 +60,25 @@ def build_lock(out_path: Path) -> Iterator[None]:
             fcntl.flock(handle, fcntl.LOCK_UN)
 
 
+def duckdb_memory_limit(meminfo: Path = Path("/proc/meminfo")) -> int | None:
+    """Bytes DuckDB may use while publishing: half the memory available now, at least 512 MiB.
+
+    DuckDB's own default is 80 % of the machine's RAM, which ignores the pandas frames the
+    build already holds; at 10M rows those are most of it. Past the limit DuckDB spills to a
+    temporary folder instead. ``None`` where the kernel does not report ``MemAvailable``
+    (not Linux): DuckDB's default then applies. Example: with 6 GiB available, 3 GiB.
+    """
+    try:
+        text = meminfo.read_text()
+    except OSError:
+        return None
+    for line in text.splitlines():
+        if line.startswith("MemAvailable:"):
+            available = int(line.split()[1]) * 1024  # reported in kB
+            return max(512 * 2**20, available // 2)
+    return None
+
+
 def publish(
     tables: Mapping[str, pd.DataFrame], out_path: Path | str, cell_facts: pd.DataFrame | None = None
 ) -> Path:
@@ -78,10 +98,15 @@ def publish(
     expected = {name: len(frame) for name, frame in tables.items()}
     out_path.parent.mkdir(parents=True, exist_ok=True)
     tmp = out_path.with_name(f".{out_path.name}.tmp-{os.getpid()}")
+    spill = tmp.with_name(tmp.name + ".spill")
     tmp.unlink(missing_ok=True)
     try:
         con = duckdb.connect(str(tmp))
         try:
+            limit = duckdb_memory_limit()
+            if limit is not None:
+                con.execute(f"SET memory_limit = '{limit // 2**20}MiB'")
+            con.execute("SET temp_directory = ?", [str(spill)])
             con.execute(published_ddl())
             for name in TABLE_ORDER:
                 con.register("incoming", tables[name])
@@ -120,6 +145,8 @@ def publish(
         tmp.unlink(missing_ok=True)
         Path(str(tmp) + ".wal").unlink(missing_ok=True)
         raise
+    finally:
+        shutil.rmtree(spill, ignore_errors=True)
     return out_path
 
 

@@ -39,6 +39,23 @@ def test_publish_writes_every_table(tmp_path: Path) -> None:
     assert [p.name for p in tmp_path.iterdir()] == ["db.duckdb"]  # no temporary left behind
 
 
+@pytest.mark.parametrize(
+    ("meminfo", "expected"),
+    [
+        ("MemTotal:       24000000 kB\nMemAvailable:    6291456 kB\n", 3 * 2**30),  # half of 6 GiB
+        ("MemAvailable:     524288 kB\n", 512 * 2**20),  # half of 512 MiB, raised to the floor
+        ("MemTotal:       24000000 kB\n", None),  # no MemAvailable line: DuckDB's default
+    ],
+)
+def test_duckdb_memory_limit_is_half_of_what_is_available(
+    tmp_path: Path, meminfo: str, expected: int | None
+) -> None:
+    path = tmp_path / "meminfo"
+    path.write_text(meminfo)
+    assert publish.duckdb_memory_limit(path) == expected
+    assert publish.duckdb_memory_limit(tmp_path / "missing") is None
+
+
 def test_failed_publish_keeps_last_good_file(tmp_path: Path) -> None:
     out = tmp_path / "db.duckdb"
     good = _empty_tables()

@@ -229,6 +229,9 @@ def test_build_after_a_kill_recovers_and_matches_a_clean_build(
     write_source(raw_dir, "second", "Compound,Value\nacetic acid,4.76\nphenol,9.99\n")
     _kill(_start_paused(raw_dir, good_db, "publish-writing"))
     assert list(good_db.parent.glob(f".{good_db.name}.tmp-*"))
+    spill = good_db.parent / f".{good_db.name}.tmp-1.spill"  # DuckDB's spill folder, as a kill leaves it
+    spill.mkdir()
+    (spill / "duckdb_temp_block-0.block").write_bytes(b"\0" * 4096)
     summary = build(raw_dir, good_db)  # kept stage output of the killed build may be reused
     assert summary.rows_read == 5
     assert not list(good_db.parent.glob(f".{good_db.name}.tmp-*"))  # stale temporary removed
