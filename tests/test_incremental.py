@@ -113,3 +113,27 @@ def test_damaged_cache_entry_is_ignored(demo_raw: Path, tmp_path: Path) -> None:
     build(demo_raw, out, force=True)
     clean = build(demo_raw, tmp_path / "clean" / "kaledger.duckdb", use_cache=False)
     assert _tables(out) == _tables(clean.out_path)
+
+
+def test_kept_entry_reads_back_equal_with_repeated_texts_shared(tmp_path: Path) -> None:
+    from pipeline.stage_cache import _read_frame, _write_frame
+
+    n = 5000
+    frame = pd.DataFrame({
+        "value_id": pd.array([f"kv-{i:08d}" for i in range(n)], dtype="str"),
+        "source_id": pd.array(["oaac-tables"] * n, dtype="str"),
+        "method": pd.array([None if i % 7 == 0 else ("potentiometry", "spectrophotometry")[i % 2]
+                            for i in range(n)], dtype="str"),
+        "note": pd.Series([None if i % 3 == 0 else "from the table footnote" for i in range(n)], dtype=object),
+        "pka": [4.756 + i * 1e-6 for i in range(n)],
+    })
+    import duckdb
+
+    with duckdb.connect() as con:
+        dtypes = _write_frame(con, frame, tmp_path / "part.parquet")
+        back = _read_frame(con, tmp_path / "part.parquet", dtypes)
+    pd.testing.assert_frame_equal(back, frame)
+    assert back["note"].iloc[0] is None  # object columns keep None, not NaN
+    # one string object per distinct text, as normalize makes them (common practice: memory)
+    assert len({id(v) for v in back["source_id"].to_numpy()}) == 1
+    assert len({id(v) for v in back["method"].dropna().to_numpy()}) == 2
